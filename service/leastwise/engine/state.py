@@ -1,0 +1,395 @@
+"""One model's exact recursive least-squares state (square-root information form).
+
+After observations ``1..n`` with weights ``b_i`` and ridge start ``delta`` the
+state represents the exact minimiser of
+
+    J(w) = sum_i b_i (y_i - x_i^T w)^2 + b_0 delta ||w||^2
+
+with, for a forgetting factor ``lambda``, ``b_i = lambda^(n-i)`` and
+``b_0 = lambda^n``; for a half-life ``h`` seconds, ``b_i = 2^(-(t_n-t_i)/h)``
+and ``b_0 = 2^(-(t_n-t_1)/h)`` (the prior forgets like an observation made at
+the first observation's time). Both follow from the recursion
+``A_n = f_n A_{n-1} + x_n x_n^T`` with a decay ``f_n`` per step, which is how
+the factor is advanced (see :mod:`leastwise.engine.factor`).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+import numpy as np
+from numpy.typing import ArrayLike
+from scipy.linalg.blas import dtrsv
+
+from .errors import DimensionError, NonFiniteError, TimeOrderError
+from scipy.linalg.lapack import dtpqrt as _tpqrt
+
+from .factor import BLOCK_CHUNK, absorb_rows, new_factor
+from .solution import Excitation, Prediction, Solution, excitation, inverse_moment, predict, solve
+from .spec import Spec
+
+__all__ = ["State", "Step", "MAX_ABS_VALUE"]
+
+#: Largest magnitude accepted for any x, y or time value. Squares and sums of
+#: up to 10^12 such terms stay far inside the float64 range, so no overflow.
+MAX_ABS_VALUE = 1e100
+
+#: Leverage ``x^T (f A)^{-1} x`` above which the state is taken to carry no
+#: information along ``x`` (an unexcited direction); the a priori residual is
+#: then not standardised.
+LEVERAGE_LIMIT = 1e24
+
+_MAX_SQUARED_NORM = MAX_ABS_VALUE * MAX_ABS_VALUE
+
+# An unexcited direction makes u = R^{-T} x overflow; that is detected and handled
+# below (leverage not finite), so numpy's warning about it is noise.
+warnings.filterwarnings("ignore", message="overflow encountered in dot", category=RuntimeWarning, module=__name__)
+
+
+@dataclass(slots=True)
+class Step:
+    """What one update reports, all computed before the observation is absorbed.
+
+    Attributes:
+        prediction: the a priori prediction ``x^T w_{n-1}`` (coefficients before this
+            observation; minimum-norm ones while the model is not identifiable).
+        residual: ``y - prediction``.
+        leverage: ``x^T (f A_{n-1})^{-1} x``, or ``None`` when the state had no
+            information along ``x``.
+        recursive_residual: ``residual / sqrt(1 + leverage)``, the recursive
+            residual of Brown, Durbin & Evans (1975); ``None`` as for leverage.
+        standardized_residual: ``recursive_residual / sigma_{n-1}``; ``None`` while
+            sigma is not estimable.
+        decay: the factor ``f_n`` applied to the old information.
+    """
+
+    prediction: float
+    residual: float
+    leverage: float | None
+    recursive_residual: float | None
+    standardized_residual: float | None
+    decay: float
+
+
+class State:
+    """Exact weighted ridge least-squares state for one model.
+
+    Holds the augmented factor ``M = [[R, z], [0, rho]]`` plus the scalar
+    counters of the weights. Pure: no I/O. Not thread-safe; callers serialise.
+    """
+
+    __slots__ = (
+        "spec", "_factor", "n", "prior_weight", "weight_sum", "weight_sq_sum",
+        "first_time", "last_time", "_solution", "_row", "_sigma",
+    )
+
+    def __init__(self, spec: Spec) -> None:
+        self.spec = spec
+        self._factor = new_factor(spec.dim, float(spec.ridge))
+        #: observations absorbed since the prior
+        self.n = 0
+        #: b_0, the current weight of the ridge prior
+        self.prior_weight = 1.0
+        #: S1 = sum_i b_i, the effective sample size (documented in DEVELOPERS.md)
+        self.weight_sum = 0.0
+        #: S2 = sum_i b_i^2
+        self.weight_sq_sum = 0.0
+        self.first_time: float | None = None
+        self.last_time: float | None = None
+        self._solution: Solution | None = None
+        self._row = np.zeros((1, spec.dim + 1), dtype=np.float64, order="F")
+        self._sigma = -1.0  # cached sigma of the current state; -1 = not computed
+
+    # ------------------------------------------------------------------ views
+    @property
+    def dim(self) -> int:
+        return self.spec.dim
+
+    @property
+    def factor(self) -> np.ndarray:
+        """A read-only view of the augmented factor ``[[R, z], [0, rho]]``."""
+        view = self._factor.view()
+        view.flags.writeable = False
+        return view
+
+    def solution(self) -> Solution:
+        """Coefficients, identifiability, sigma and the moment matrices (cached per state)."""
+        if self._solution is None:
+            self._solution = solve(self._factor, self.spec, self.prior_weight, self.weight_sum)
+        return self._solution
+
+    def coefficients(self) -> np.ndarray:
+        """The exact minimiser ``w_n`` (minimum-norm while not identifiable)."""
+        return self.solution().coefficients.copy()
+
+    def predict(self, rows: ArrayLike, level: float = 0.95) -> Prediction:
+        """Prediction mean, standard errors and intervals for the rows ``X`` (``k x d`` or ``d``)."""
+        x = self._check_matrix(rows)
+        return predict(self._factor, self.solution(), x, level, self.spec.forgets)
+
+    def inverse_moment(self) -> np.ndarray:
+        """``P = A^{-1}``, derived from the factor (pseudo-inverse when not identifiable)."""
+        return inverse_moment(self._factor, self.solution())
+
+    def covariance(self) -> np.ndarray | None:
+        """Coefficient covariance ``sigma^2 P``; ``None`` while sigma is not estimable."""
+        sol = self.solution()
+        if sol.sigma is None:
+            return None
+        return sol.sigma * sol.sigma * self.inverse_moment()
+
+    def excitation(self) -> Excitation:
+        """Condition of the information matrix and its least-informed direction."""
+        return excitation(self._factor, self.solution(), self.weight_sum)
+
+    @property
+    def effective_n(self) -> float:
+        """Effective sample size ``S1 = sum_i b_i`` (equals n without forgetting)."""
+        return self.weight_sum
+
+    # ---------------------------------------------------------------- updates
+    def update(self, x: ArrayLike, y: float, t: float | None = None) -> Step:
+        """Absorb one observation ``(x, y)`` made at time ``t`` (seconds).
+
+        The state is unchanged when an error is raised.
+        """
+        xv = self._check_vector(x)
+        yv = _check_scalar(y, "y")
+        decay = self._decay_for(_check_time(t) if t is not None else None)
+        return self._absorb_one(xv, yv, t, decay)
+
+    def update_many(
+        self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None = None
+    ) -> list[Step]:
+        """Absorb k observations in order: exactly ``k`` calls of :meth:`update`.
+
+        Every row is checked first, so an error leaves the state unchanged.
+        """
+        x, y, t = self._check_batch(rows, ys, times)
+        decays = self._decays_for(t, x.shape[0])
+        steps = []
+        for i in range(x.shape[0]):
+            steps.append(self._absorb_one(x[i], float(y[i]), None if t is None else float(t[i]), decays[i]))
+        return steps
+
+    def absorb_block(self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None = None) -> None:
+        """Absorb many observations at once (backfills): the same state as ``update_many``.
+
+        The weights of the whole block are applied to its rows directly
+        (``sqrt(b_i)`` scaling) and the rows are absorbed ``BLOCK_CHUNK`` at a
+        time by the blocked QR update, so the resulting state equals the
+        row-by-row one to rounding (not bit for bit). No per-row residuals.
+        """
+        x, y, t = self._check_batch(rows, ys, times)
+        k = x.shape[0]
+        decays = np.asarray(self._decays_for(t, k), dtype=np.float64)
+        # b_i within the block, relative to its end: prod_{j>i} f_j, from the right.
+        tail = np.ones(k, dtype=np.float64)
+        if k > 1:
+            tail[:-1] = np.cumprod(decays[:0:-1])[::-1]
+        total_decay = float(tail[0] * decays[0])
+        scale = np.sqrt(tail)
+        if total_decay != 1.0:
+            self._factor *= math.sqrt(total_decay)
+        d = self.dim
+        for start in range(0, k, BLOCK_CHUNK):
+            stop = min(start + BLOCK_CHUNK, k)
+            chunk = np.empty((stop - start, d + 1), dtype=np.float64, order="F")
+            chunk[:, :d] = x[start:stop]
+            chunk[:, d] = y[start:stop]
+            if total_decay != 1.0 or k > 1 and scale[start] != 1.0:
+                chunk *= scale[start:stop, None]
+            self._factor = absorb_rows(self._factor, chunk)
+        self.prior_weight *= total_decay
+        self.weight_sum = total_decay * self.weight_sum + float(tail.sum())
+        self.weight_sq_sum = total_decay * total_decay * self.weight_sq_sum + float(np.dot(tail, tail))
+        self.n += k
+        self._sigma = -1.0
+        if t is not None:
+            if self.first_time is None:
+                self.first_time = float(t[0])
+            self.last_time = float(t[-1])
+        self._solution = None
+
+    def reset(self) -> None:
+        """Back to the prior: as if no observation had been made."""
+        fresh = State(self.spec)
+        for name in State.__slots__:
+            setattr(self, name, getattr(fresh, name))
+
+    # ------------------------------------------------------------- internals
+    def _absorb_one(self, x: np.ndarray, y: float, t: float | None, decay: float) -> Step:
+        d = self.dim
+        factor = self._factor
+        sigma = self._sigma_now()
+        if decay != 1.0:
+            factor *= math.sqrt(decay)
+        R = factor[:d, :d]
+        z = factor[:d, d]
+        # u solves (sqrt(f) R)^T u = x, so u.u = x^T (f A)^{-1} x and u.z = x^T w.
+        u = dtrsv(R, x, trans=1)
+        leverage = float(np.dot(u, u))
+        if math.isfinite(leverage) and leverage <= LEVERAGE_LIMIT:
+            prediction = float(np.dot(u, z))
+            residual = y - prediction
+            recursive: float | None = residual / math.sqrt(1.0 + leverage)
+            lev: float | None = leverage
+        else:
+            # No information along x yet: predict with the minimum-norm solution.
+            previous = solve(factor, self.spec, self.prior_weight, self.weight_sum)
+            prediction = float(np.dot(previous.coefficients, x))
+            residual = y - prediction
+            recursive = None
+            lev = None
+        if not math.isfinite(prediction):  # pragma: no cover - bounded inputs keep it finite
+            raise NonFiniteError("prediction outside the floating-point range")
+        standardized = recursive / sigma if (recursive is not None and sigma) else None
+        row = self._row
+        row[0, :d] = x
+        row[0, d] = y
+        self._factor = _tpqrt(0, _nb(d + 1), factor, row, overwrite_a=1, overwrite_b=1)[0]
+        self.n += 1
+        self.prior_weight *= decay
+        self.weight_sum = decay * self.weight_sum + 1.0
+        self.weight_sq_sum = decay * decay * self.weight_sq_sum + 1.0
+        if t is not None:
+            if self.first_time is None:
+                self.first_time = t
+            self.last_time = t
+        self._solution = None
+        self._sigma = -1.0
+        return Step(prediction, residual, lev, recursive, standardized, decay)
+
+    def _sigma_now(self) -> float | None:
+        """Sigma of the current state, cheaply (no condition estimate); ``None`` if not estimable."""
+        if self._solution is not None:
+            return self._solution.sigma
+        if self._sigma >= 0.0:
+            return self._sigma or None
+        d = self.dim
+        dof = self.weight_sum - d
+        value = 0.0
+        if dof > 0.0:
+            rho = float(self._factor[d, d])
+            rss = rho * rho
+            if self.spec.ridge > 0.0 and self.prior_weight > 0.0:
+                w = dtrsv(self._factor[:d, :d], self._factor[:d, d])
+                rss -= self.prior_weight * self.spec.ridge * float(np.dot(w, w))
+            if rss > 0.0 and math.isfinite(rss):
+                value = math.sqrt(rss / dof)
+        self._sigma = value
+        return value or None
+
+    def _decay_for(self, t: float | None) -> float:
+        if self.spec.half_life is None:
+            if t is not None and self.last_time is not None and t < self.last_time:
+                raise TimeOrderError(f"time {t!r} is earlier than the last observation's {self.last_time!r}")
+            return float(self.spec.forgetting)
+        if t is None:
+            raise TimeOrderError("a model with a half-life needs a time on every observation")
+        if self.last_time is None:
+            return 1.0  # the prior sits at the first observation's time
+        if t < self.last_time:
+            raise TimeOrderError(f"time {t!r} is earlier than the last observation's {self.last_time!r}")
+        return 2.0 ** (-(t - self.last_time) / self.spec.half_life)
+
+    def _decays_for(self, t: np.ndarray | None, count: int) -> list[float]:
+        if t is None:
+            if self.spec.half_life is not None:
+                raise TimeOrderError("a model with a half-life needs a time on every observation")
+            return [float(self.spec.forgetting)] * count
+        last = self.last_time
+        out = []
+        for ti in t.tolist():
+            if last is not None and ti < last:
+                raise TimeOrderError(f"time {ti!r} is earlier than the previous observation's {last!r}")
+            if self.spec.half_life is None:
+                out.append(float(self.spec.forgetting))
+            elif last is None:
+                out.append(1.0)
+            else:
+                out.append(2.0 ** (-(ti - last) / self.spec.half_life))
+            last = ti
+        return out
+
+    def _check_vector(self, x: ArrayLike) -> np.ndarray:
+        xv = np.asarray(x, dtype=np.float64)
+        if xv.shape != (self.dim,):
+            raise DimensionError(f"x must have {self.dim} values, got shape {xv.shape}")
+        # One dot product checks both: NaN/inf propagate, and |x_j| <= ||x|| <= MAX_ABS_VALUE.
+        if not float(np.dot(xv, xv)) <= _MAX_SQUARED_NORM:
+            raise NonFiniteError(f"x must be finite with Euclidean norm at most {MAX_ABS_VALUE:g}")
+        return xv
+
+    def _check_matrix(self, rows: ArrayLike) -> np.ndarray:
+        x = np.asarray(rows, dtype=np.float64)
+        if x.ndim == 1:
+            x = x[None, :]
+        if x.ndim != 2 or x.shape[1] != self.dim:
+            raise DimensionError(f"rows must have {self.dim} columns, got shape {x.shape}")
+        _check_finite(x, "x")
+        return x
+
+    def _check_batch(
+        self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+        x = np.asarray(rows, dtype=np.float64)
+        if x.ndim != 2 or x.shape[1] != self.dim:
+            raise DimensionError(f"rows must be k x {self.dim}, got shape {x.shape}")
+        y = np.asarray(ys, dtype=np.float64).reshape(-1)
+        if y.shape[0] != x.shape[0]:
+            raise DimensionError(f"{x.shape[0]} rows but {y.shape[0]} responses")
+        if x.shape[0] == 0:
+            raise DimensionError("a batch needs at least one observation")
+        _check_finite(x, "x")
+        _check_finite(y, "y")
+        t = None
+        if times is not None:
+            t = np.asarray(times, dtype=np.float64).reshape(-1)
+            if t.shape[0] != x.shape[0]:
+                raise DimensionError(f"{x.shape[0]} rows but {t.shape[0]} times")
+            _check_finite(t, "time")
+        return x, y, t
+
+    # ------------------------------------------------------------ round trip
+    def to_bytes(self) -> bytes:
+        from .serial import dump_state
+
+        return dump_state(self)
+
+    @classmethod
+    def from_bytes(cls, data: bytes) -> "State":
+        from .serial import load_state
+
+        return load_state(data)
+
+    def copy(self) -> "State":
+        return State.from_bytes(self.to_bytes())
+
+    def __repr__(self) -> str:
+        return f"State(dim={self.dim}, n={self.n}, forgetting={self.spec.forgetting}, half_life={self.spec.half_life}, ridge={self.spec.ridge})"
+
+
+def _check_finite(a: np.ndarray, field: str) -> None:
+    if a.size and not (np.isfinite(a).all() and np.abs(a).max() <= MAX_ABS_VALUE):
+        raise NonFiniteError(f"{field} must be finite with magnitude at most {MAX_ABS_VALUE:g}")
+    if a.ndim == 2 and field == "x" and not (np.einsum("ij,ij->i", a, a) <= _MAX_SQUARED_NORM).all():
+        raise NonFiniteError(f"each row of x must have Euclidean norm at most {MAX_ABS_VALUE:g}")
+
+
+def _nb(n: int) -> int:
+    return n if n < 8 else 8  # LAPACK block size; see factor.absorb_rows
+
+
+def _check_scalar(v: float, field: str) -> float:
+    if isinstance(v, bool):
+        raise NonFiniteError(f"{field} must be a number")
+    fv = float(v)
+    if not (math.isfinite(fv) and abs(fv) <= MAX_ABS_VALUE):
+        raise NonFiniteError(f"{field} must be finite with magnitude at most {MAX_ABS_VALUE:g}")
+    return fv
+
+
+def _check_time(t: float) -> float:
+    return _check_scalar(t, "time")

@@ -1,0 +1,100 @@
+"""Engine benchmark: cost of one exact update against a minimal Sherman–Morrison step.
+
+Not a test: run ``python tests/bench/engine.py``. Figures are ratios measured in
+one run (interleaved repeats, best of each) because the machines are shared.
+Prints one JSON line per dimension; the last line is d = 8 with the targets.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import time
+
+import numpy as np
+
+from leastwise.engine import Spec, State
+
+
+def best_time(fn, number: int, repeat: int) -> float:
+    best = float("inf")
+    for _ in range(repeat):
+        start = time.perf_counter()
+        fn(number)
+        best = min(best, time.perf_counter() - start)
+    return best / number
+
+
+def measure(d: int, block_rows: int, repeat: int = 7) -> dict:
+    rng = np.random.default_rng(d)
+    pool = 4096
+    X = rng.normal(size=(pool, d))
+    Y = X @ rng.normal(size=d) + rng.normal(size=pool)
+
+    state = State(Spec(dim=d, forgetting=0.999))
+    state.update_many(X[: 4 * d], Y[: 4 * d])
+
+    def run_update(number: int) -> None:
+        upd = state.update
+        for i in range(number):
+            j = i & (pool - 1)
+            upd(X[j], Y[j])
+
+    # Minimal textbook recursive least squares (Sherman–Morrison on P), same d, same rows.
+    P = np.eye(d) * 1e3
+    w = np.zeros(d)
+    lam = 0.999
+
+    def run_sm(number: int) -> None:
+        nonlocal P, w
+        for i in range(number):
+            j = i & (pool - 1)
+            x = X[j]
+            Px = P @ x
+            k = Px / (lam + x @ Px)
+            w = w + k * (Y[j] - x @ w)
+            P = (P - np.outer(k, Px)) / lam
+
+    number = 4000 if d <= 32 else 1000
+    upd, sm = float("inf"), float("inf")
+    for _ in range(repeat):  # interleave so both see the same machine load
+        upd = min(upd, best_time(run_update, number, 1))
+        sm = min(sm, best_time(run_sm, number, 1))
+
+    Xb = rng.normal(size=(block_rows, d))
+    yb = Xb @ rng.normal(size=d) + rng.normal(size=block_rows)
+    block, lstsq = float("inf"), float("inf")
+    for _ in range(3):
+        s = State(Spec(dim=d))
+        start = time.perf_counter()
+        s.absorb_block(Xb, yb)
+        s.coefficients()
+        block = min(block, time.perf_counter() - start)
+        start = time.perf_counter()
+        np.linalg.lstsq(Xb, yb, rcond=None)
+        lstsq = min(lstsq, time.perf_counter() - start)
+    return {
+        "d": d,
+        "update_us": round(upd * 1e6, 3),
+        "sm_update_us": round(sm * 1e6, 3),
+        "update_ratio": round(upd / sm, 3),
+        "block_rows": block_rows,
+        "block_rows_per_s": round(block_rows / block),
+        "block_vs_lstsq": round(block / lstsq, 3),
+    }
+
+
+def main() -> None:
+    quick = "--quick" in sys.argv
+    rows = 100_000 if quick else 1_000_000
+    info = {"cores": os.cpu_count(), "numpy": np.__version__}
+    for d in (32, 128):
+        print(json.dumps(measure(d, rows // (4 if d == 128 else 1)) | info))
+    result = measure(8, rows) | info
+    result["targets"] = {"update_ratio": "<= 1.5", "block_rows_per_s": ">= 5e6", "block_vs_lstsq": "<= 1.0"}
+    print(json.dumps(result))
+
+
+if __name__ == "__main__":
+    main()

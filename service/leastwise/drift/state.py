@@ -311,7 +311,7 @@ class DriftState:
             self._bde_w_since = -1
             self._bde_a_since = -1
         # z-detectors
-        z = w / sigma
+        z = w / float(sigma)
         self._nz += 1
         k = self._k
         cp = self._cp + z - k

@@ -1,10 +1,12 @@
 """State to bytes and back, bit for bit.
 
 Layout (little-endian): magic ``b"LWSQ"``, format version (u8), flags (u8:
-bit 0 half-life set, bit 1 first time set, bit 2 last time set), dim (u16),
-n (u64), eight float64 scalars (forgetting, half-life, ridge, prior weight,
-S1, S2, first time, last time), then the ``(d+1)^2`` float64 entries of the
-augmented factor in column-major order. Raw IEEE 754 bytes: nothing is
+bit 0 half-life set, bit 1 first time set, bit 2 last time set, bit 3 Gram
+matrix exact), dim (u16), n (u64), buffered rows (u16), eight float64 scalars
+(forgetting, half-life, ridge, prior weight, S1, S2, first time, last time),
+then the ``(d+1)^2`` float64 entries of the augmented factor in column-major
+order, the extended Gram matrix as two float64 matrices (``hi``, ``lo`` with
+``G = hi + lo`` exactly), and the buffered rows and their decays. Raw IEEE 754 bytes: nothing is
 rounded, so a restored state continues exactly as one that never stopped.
 """
 
@@ -16,25 +18,36 @@ import struct
 import numpy as np
 
 from .errors import StateFormatError
+from .gram import FOLD_ROWS, join_pairs, split_pairs
 from .spec import Spec
 
 __all__ = ["dump_state", "load_state", "FORMAT_VERSION"]
 
 MAGIC = b"LWSQ"
 FORMAT_VERSION = 1
-_HEAD = struct.Struct("<4sBBHQ8d")
+_HEAD = struct.Struct("<4sBBHQH8d")
 
 
 def dump_state(state) -> bytes:  # state: State (not imported: state.py imports this module lazily)
     spec = state.spec
-    flags = (spec.half_life is not None) | ((state.first_time is not None) << 1) | ((state.last_time is not None) << 2)
+    flags = (
+        (spec.half_life is not None) | ((state.first_time is not None) << 1)
+        | ((state.last_time is not None) << 2) | (bool(state.gram_exact) << 3)
+    )
+    k = state._pending_n
     head = _HEAD.pack(
-        MAGIC, FORMAT_VERSION, flags, spec.dim, state.n,
+        MAGIC, FORMAT_VERSION, flags, spec.dim, state.n, k,
         float(spec.forgetting), float(spec.half_life or 0.0), float(spec.ridge),
         state.prior_weight, state.weight_sum, state.weight_sq_sum,
         float(state.first_time or 0.0), float(state.last_time or 0.0),
     )
-    return head + np.asfortranarray(state._factor, dtype="<f8").tobytes(order="F")
+    return b"".join((
+        head,
+        np.asfortranarray(state._factor, dtype="<f8").tobytes(order="F"),
+        split_pairs(state._gram).astype("<f8").tobytes(),
+        state._pending[:k].astype("<f8").tobytes(),
+        state._pending_decay[:k].astype("<f8").tobytes(),
+    ))
 
 
 def load_state(data: bytes):
@@ -42,19 +55,31 @@ def load_state(data: bytes):
 
     if len(data) < _HEAD.size:
         raise StateFormatError("state bytes too short")
-    (magic, version, flags, dim, n, lam, half_life, ridge,
+    (magic, version, flags, dim, n, k, lam, half_life, ridge,
      prior_weight, s1, s2, first_time, last_time) = _HEAD.unpack_from(data)
     if magic != MAGIC or version != FORMAT_VERSION:
         raise StateFormatError("not a leastwise state, or an unknown format version")
-    size = (dim + 1) * (dim + 1) * 8
-    if len(data) != _HEAD.size + size:
+    m = dim + 1
+    if not (1 <= dim and k < FOLD_ROWS):
+        raise StateFormatError("state header out of range")
+    size = 3 * m * m + k * m + k
+    if len(data) != _HEAD.size + 8 * size:
         raise StateFormatError("state bytes have the wrong length")
-    factor = np.frombuffer(data, dtype="<f8", offset=_HEAD.size).reshape((dim + 1, dim + 1), order="F")
+    body = np.frombuffer(data, dtype="<f8", offset=_HEAD.size)
+    factor = body[: m * m].reshape((m, m), order="F")
+    pairs = body[m * m: 3 * m * m].reshape((2, m, m))
+    pending = body[3 * m * m: 3 * m * m + k * m].reshape((k, m))
+    decays = body[3 * m * m + k * m:]
     scalars = (lam, half_life, ridge, prior_weight, s1, s2, first_time, last_time)
-    if not (np.isfinite(factor).all() and all(math.isfinite(v) for v in scalars)):
+    if not (np.isfinite(body).all() and all(math.isfinite(v) for v in scalars)):
         raise StateFormatError("state holds a non-finite number")
     state = State(Spec(dim=dim, forgetting=lam, half_life=half_life if flags & 1 else None, ridge=ridge))
     state._factor = np.array(factor, dtype=np.float64, order="F")
+    state._gram = join_pairs(pairs)
+    state._pending[:k] = pending
+    state._pending_decay[:k] = decays
+    state._pending_n = k
+    state.gram_exact = bool(flags & 8)
     state.n = n
     state.prior_weight = prior_weight
     state.weight_sum = s1

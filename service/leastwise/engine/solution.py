@@ -37,6 +37,7 @@ from scipy import stats
 from scipy.linalg.lapack import dtrcon, dtrtri, dtrtrs
 
 from .errors import EngineError
+from .gram import refine
 from .spec import Spec
 
 __all__ = ["Solution", "Prediction", "Excitation", "solve", "predict", "inverse_moment", "excitation"]
@@ -62,6 +63,7 @@ class Solution:
     sigma: float | None
     rcond: float
     unidentified: NDArray[np.float64]  # (d - rank) x d orthonormal rows
+    refined: bool = False  # True when extended-precision refinement gave the coefficients
     _svd: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]] | None = field(
         default=None, repr=False, compare=False
     )
@@ -107,8 +109,15 @@ class Excitation:
     effective_n: float
 
 
-def solve(factor: NDArray[np.float64], spec: Spec, prior_weight: float, weight_sum: float) -> Solution:
-    """Solve the factored weighted ridge problem (see the module docstring for the formulas)."""
+def solve(
+    factor: NDArray[np.float64], spec: Spec, prior_weight: float, weight_sum: float,
+    gram: NDArray[np.longdouble] | None = None, n_terms: float = 0.0,
+) -> Solution:
+    """Solve the factored weighted ridge problem (see the module docstring for the formulas).
+
+    With ``gram`` (the extended-precision Gram matrix) the factor's solution is
+    refined when that is provably more accurate (:func:`.gram.refine`).
+    """
     d = spec.dim
     R = factor[:d, :d]
     z = factor[:d, d]
@@ -122,9 +131,12 @@ def solve(factor: NDArray[np.float64], spec: Spec, prior_weight: float, weight_s
         identifiable = info == 0 and rcond > RCOND_TOL
     extra = 0.0
     svd = None
+    refined = False
     if identifiable:
         w, info = dtrtrs(R, z, lower=0, trans=0)
         w = np.asarray(w, dtype=np.float64).reshape(d)
+        if gram is not None:
+            w, refined = refine(R, rcond, w, gram)
         rank = d
         unidentified = np.zeros((0, d))
         if info != 0 or not np.isfinite(w).all():  # pragma: no cover - excluded by the tests above
@@ -147,7 +159,7 @@ def solve(factor: NDArray[np.float64], spec: Spec, prior_weight: float, weight_s
         sigma = None
     return Solution(
         coefficients=w, identifiable=identifiable, rank=rank, rss=rss, dof=float(dof),
-        sigma=sigma, rcond=rcond, unidentified=unidentified, _svd=svd,
+        sigma=sigma, rcond=rcond, unidentified=unidentified, refined=refined, _svd=svd,
     )
 
 

@@ -26,6 +26,7 @@ from .errors import DimensionError, NonFiniteError, TimeOrderError
 from scipy.linalg.lapack import dtpqrt as _tpqrt
 
 from .factor import BLOCK_CHUNK, absorb_rows, new_factor
+from .gram import FOLD_ROWS, EXTENDED, fold, new_gram
 from .solution import Excitation, Prediction, Solution, excitation, inverse_moment, predict, solve
 from .spec import Spec
 
@@ -81,7 +82,8 @@ class State:
 
     __slots__ = (
         "spec", "_factor", "n", "prior_weight", "weight_sum", "weight_sq_sum",
-        "first_time", "last_time", "_solution", "_row", "_sigma",
+        "first_time", "last_time", "_solution", "_sigma",
+        "_gram", "_pending", "_pending_decay", "_pending_n", "gram_exact",
     )
 
     def __init__(self, spec: Spec) -> None:
@@ -98,8 +100,14 @@ class State:
         self.first_time: float | None = None
         self.last_time: float | None = None
         self._solution: Solution | None = None
-        self._row = np.zeros((1, spec.dim + 1), dtype=np.float64, order="F")
         self._sigma = -1.0  # cached sigma of the current state; -1 = not computed
+        # Extended-precision Gram matrix (see gram.py) and rows not yet folded into it.
+        self._gram = new_gram(spec.dim, float(spec.ridge))
+        self._pending = np.zeros((FOLD_ROWS, spec.dim + 1), dtype=np.float64)
+        self._pending_decay = np.ones(FOLD_ROWS, dtype=np.float64)
+        self._pending_n = 0
+        #: False once a block backfill added rows to the Gram matrix in double precision
+        self.gram_exact = True
 
     # ------------------------------------------------------------------ views
     @property
@@ -116,8 +124,14 @@ class State:
     def solution(self) -> Solution:
         """Coefficients, identifiability, sigma and the moment matrices (cached per state)."""
         if self._solution is None:
-            self._solution = solve(self._factor, self.spec, self.prior_weight, self.weight_sum)
+            gram = self.gram() if self.gram_exact else None
+            self._solution = solve(self._factor, self.spec, self.prior_weight, self.weight_sum, gram, self.n)
         return self._solution
+
+    def gram(self) -> np.ndarray:
+        """The extended-precision augmented Gram matrix with the buffered rows folded in (a new array)."""
+        k = self._pending_n
+        return fold(self._gram, self._pending[:k], self._pending_decay[:k])
 
     def coefficients(self) -> np.ndarray:
         """The exact minimiser ``w_n`` (minimum-norm while not identifiable)."""
@@ -190,8 +204,11 @@ class State:
             tail[:-1] = np.cumprod(decays[:0:-1])[::-1]
         total_decay = float(tail[0] * decays[0])
         scale = np.sqrt(tail)
+        self._gram = self.gram()
+        self._pending_n = 0
         if total_decay != 1.0:
             self._factor *= math.sqrt(total_decay)
+        self._gram *= EXTENDED(total_decay)
         d = self.dim
         for start in range(0, k, BLOCK_CHUNK):
             stop = min(start + BLOCK_CHUNK, k)
@@ -200,7 +217,10 @@ class State:
             chunk[:, d] = y[start:stop]
             if total_decay != 1.0 or k > 1 and scale[start] != 1.0:
                 chunk *= scale[start:stop, None]
+            # Double-precision Gram for speed; the extended refinement is off from here on.
+            self._gram += (chunk.T @ chunk).astype(EXTENDED)
             self._factor = absorb_rows(self._factor, chunk)
+        self.gram_exact = False
         self.prior_weight *= total_decay
         self.weight_sum = total_decay * self.weight_sum + float(tail.sum())
         self.weight_sq_sum = total_decay * total_decay * self.weight_sq_sum + float(np.dot(tail, tail))
@@ -220,35 +240,46 @@ class State:
 
     # ------------------------------------------------------------- internals
     def _absorb_one(self, x: np.ndarray, y: float, t: float | None, decay: float) -> Step:
+        # Everything that can fail is computed before the state is touched.
         d = self.dim
         factor = self._factor
-        sigma = self._sigma_now()
+        sigma = self._sigma if self._sigma >= 0.0 else self._sigma_now()
+        # u solves R^T u = x: x^T (f A)^{-1} x = u.u / f and x^T w = u.z (w is unchanged by decay).
+        u = dtrsv(factor[:d, :d], x, trans=1)
+        leverage = float(np.dot(u, u)) / decay
+        recursive: float | None = None
+        lev: float | None = None
+        prediction = math.inf
+        if leverage <= LEVERAGE_LIMIT:  # False for NaN and inf too
+            prediction = float(np.dot(u, factor[:d, d]))
+            lev = leverage
+        if not math.isfinite(prediction):
+            # No information along x yet: predict with the minimum-norm solution.
+            lev = None
+            previous = solve(factor, self.spec, self.prior_weight, self.weight_sum)
+            with np.errstate(over="ignore", invalid="ignore"):
+                prediction = float(np.dot(previous.coefficients, x))
+            if not math.isfinite(prediction):
+                raise NonFiniteError("prediction outside the floating-point range; rescale the features")
+        residual = y - prediction
+        if lev is not None:
+            recursive = residual / math.sqrt(1.0 + lev)
+        standardized = recursive / sigma if (recursive is not None and sigma) else None
+        # Mutations from here on.
         if decay != 1.0:
             factor *= math.sqrt(decay)
-        R = factor[:d, :d]
-        z = factor[:d, d]
-        # u solves (sqrt(f) R)^T u = x, so u.u = x^T (f A)^{-1} x and u.z = x^T w.
-        u = dtrsv(R, x, trans=1)
-        leverage = float(np.dot(u, u))
-        if math.isfinite(leverage) and leverage <= LEVERAGE_LIMIT:
-            prediction = float(np.dot(u, z))
-            residual = y - prediction
-            recursive: float | None = residual / math.sqrt(1.0 + leverage)
-            lev: float | None = leverage
-        else:
-            # No information along x yet: predict with the minimum-norm solution.
-            previous = solve(factor, self.spec, self.prior_weight, self.weight_sum)
-            prediction = float(np.dot(previous.coefficients, x))
-            residual = y - prediction
-            recursive = None
-            lev = None
-        if not math.isfinite(prediction):  # pragma: no cover - bounded inputs keep it finite
-            raise NonFiniteError("prediction outside the floating-point range")
-        standardized = recursive / sigma if (recursive is not None and sigma) else None
-        row = self._row
+        k = self._pending_n
+        row = self._pending[k:k + 1]
         row[0, :d] = x
         row[0, d] = y
-        self._factor = _tpqrt(0, _nb(d + 1), factor, row, overwrite_a=1, overwrite_b=1)[0]
+        self._pending_decay[k] = decay
+        # overwrite_b=0: LAPACK works on a copy, the buffered row stays for the Gram fold.
+        self._factor = _tpqrt(0, _nb(d + 1), factor, row, overwrite_a=1, overwrite_b=0)[0]
+        if k + 1 == FOLD_ROWS:
+            self._gram = fold(self._gram, self._pending, self._pending_decay)
+            self._pending_n = 0
+        else:
+            self._pending_n = k + 1
         self.n += 1
         self.prior_weight *= decay
         self.weight_sum = decay * self.weight_sum + 1.0

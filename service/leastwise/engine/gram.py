@@ -92,10 +92,16 @@ def refine(
     a_hi, a_lo = pairs[0][:d, :d], pairs[1][:d, :d]
     b_hi, b_lo = pairs[0][:d, d], pairs[1][:d, d]
     a_hi_hi, a_hi_lo = _split(a_hi)
+    terms = np.empty((d, 2 * d + 3))
+    terms[:, 0] = b_hi
+    terms[:, 1] = b_lo
+    # One step already reaches the normal-equations limit when the contraction
+    # kappa(A) u_d is tiny; more are needed only close to CONVERGENCE_LIMIT.
+    steps = 1 if kappa_a * DOUBLE_ROUNDOFF * d < 1e-8 else REFINE_STEPS
     w_hi = w0.copy()
     w_lo = np.zeros(d)
-    for _ in range(REFINE_STEPS):
-        resid = _exact_residual(a_hi, a_lo, a_hi_hi, a_hi_lo, b_hi, b_lo, w_hi, w_lo)
+    for _ in range(steps):
+        resid = _exact_residual(terms, a_hi, a_lo, a_hi_hi, a_hi_lo, w_hi, w_lo)
         if resid is None:
             return w0, False
         v, _ = dtrtrs(R, resid, lower=0, trans=1)
@@ -120,18 +126,24 @@ def _split(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.floa
     return hi, a - hi
 
 
-def _exact_residual(a_hi, a_lo, a_hi_hi, a_hi_lo, b_hi, b_lo, w_hi, w_lo) -> NDArray[np.float64] | None:
-    """``b - A w`` rounded once, for ``A = a_hi + a_lo``, ``b = b_hi + b_lo``, ``w = w_hi + w_lo``."""
+def _exact_residual(terms, a_hi, a_lo, a_hi_hi, a_hi_lo, w_hi, w_lo) -> NDArray[np.float64] | None:
+    """``b - A w`` rounded once, for ``A = a_hi + a_lo``, ``b = b_hi + b_lo``, ``w = w_hi + w_lo``.
+
+    ``terms`` holds ``b_hi, b_lo`` in its first two columns; the rest is filled
+    here with the negated exact parts of ``A w``, and each row is summed by ``fsum``.
+    """
+    d = w_hi.shape[0]
     with np.errstate(over="ignore", invalid="ignore"):
         w_hi_hi, w_hi_lo = _split(w_hi)
         p = a_hi * w_hi  # Dekker's two-product: p + e == a_hi * w_hi exactly
         e = ((a_hi_hi * w_hi_hi - p) + a_hi_hi * w_hi_lo + a_hi_lo * w_hi_hi) + a_hi_lo * w_hi_lo
+        np.negative(p, out=terms[:, 3:3 + d])
+        np.negative(e, out=terms[:, 3 + d:])
         # The cross terms are u_d-relative small: one rounding of their sum is harmless.
-        small = (a_hi * w_lo).sum(axis=1) + (a_lo * w_hi).sum(axis=1)
-        terms = np.concatenate([b_hi[:, None], b_lo[:, None], -small[:, None], -p, -e], axis=1)
+        terms[:, 2] = -(a_hi @ w_lo + a_lo @ w_hi)
     if not np.isfinite(terms).all():
         return None
-    return np.array([math.fsum(row) for row in terms.tolist()], dtype=np.float64)
+    return np.array([math.fsum(row) for row in terms.tolist()])
 
 
 def split_pairs(gram: NDArray[np.longdouble]) -> NDArray[np.float64]:

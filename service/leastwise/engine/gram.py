@@ -71,22 +71,37 @@ def fold(gram: NDArray[np.longdouble], rows: NDArray[np.float64], decays: NDArra
 
 
 def refine(
-    R: NDArray[np.float64], rcond: float, w0: NDArray[np.float64], gram: NDArray[np.longdouble],
+    R: NDArray[np.float64], colnorm: NDArray[np.float64], w0: NDArray[np.float64],
+    gram: NDArray[np.longdouble], exact_sums: bool,
 ) -> tuple[NDArray[np.float64], bool]:
-    """Refine ``w0`` against the extended Gram matrix; return the solution and whether it was refined.
+    """Refine ``w0`` against the extended Gram matrix when that cannot lose accuracy.
+
+    With ``kappa`` the 2-norm condition of the column-equilibrated factor, the
+    factor's solution has a first-order error of order ``u_d kappa`` (plus a
+    ``kappa^2 tan(theta)`` term for large residuals; Golub & Van Loan, Thm
+    5.3.1) and the normal equations held in ``G`` one of order
+    ``kappa^2 * (relative error of G)``. Refinement is used when
+    (a) ``kappa <= u_d / u_e`` (2048 on x86-64), so even an ``u_e``-accurate
+    ``G`` is good enough, or (b) ``exact_sums``: every entry of ``G`` was
+    accumulated without rounding (:func:`sums_are_exact`), so its solution is
+    exact up to the refinement's own roundoff. It must also converge:
+    ``kappa^2 u_d d < CONVERGENCE_LIMIT``. Otherwise ``w0`` is returned.
 
     Each residual ``b - A w`` is evaluated exactly rounded from the double-double
     split of ``G`` and of the iterate (Dekker's product, ``math.fsum``), so the
     fixed point is the solution of the normal equations as held in ``G``.
-    Refinement runs only while ``kappa(A) u_d d < CONVERGENCE_LIMIT`` (with
-    ``kappa(A) = 1/rcond^2`` of the column-equilibrated factor); beyond that
-    the factor's backward-stable solution ``w0`` is returned unchanged.
     """
     d = w0.shape[0]
-    if EXTENDED_ROUNDOFF >= DOUBLE_ROUNDOFF or rcond <= 0.0:
+    if EXTENDED_ROUNDOFF >= DOUBLE_ROUNDOFF:
         return w0, False
-    kappa_a = 1.0 / (rcond * rcond)
+    s = np.linalg.svd(R / colnorm, compute_uv=False)
+    if not s[-1] > 0.0:
+        return w0, False
+    kappa = float(s[0] / s[-1])
+    kappa_a = kappa * kappa
     if kappa_a * DOUBLE_ROUNDOFF * d > CONVERGENCE_LIMIT:
+        return w0, False
+    if not (exact_sums or kappa <= DOUBLE_ROUNDOFF / EXTENDED_ROUNDOFF):
         return w0, False
     pairs = split_pairs(gram)
     a_hi, a_lo = pairs[0][:d, :d], pairs[1][:d, :d]
@@ -144,6 +159,39 @@ def _exact_residual(terms, a_hi, a_lo, a_hi_hi, a_hi_lo, w_hi, w_lo) -> NDArray[
     if not np.isfinite(terms).all():
         return None
     return np.array([math.fsum(row) for row in terms.tolist()])
+
+
+def value_span(rows: NDArray[np.float64]) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """Per column: the least exponent of a nonzero value's last significant bit, and the largest exponent.
+
+    ``v = f 2^e`` with ``f`` in [0.5, 1); the last set bit of the 53-bit
+    significand ``f 2^53`` gives the value's least significant bit.
+    """
+    v = np.abs(rows)
+    f, e = np.frexp(v)
+    significand = (f * 2.0**53).astype(np.int64)
+    _, low = np.frexp((significand & -significand).astype(np.float64))
+    lsb = e.astype(np.int64) - 54 + low
+    nonzero = v > 0.0
+    return (np.where(nonzero, lsb, _NO_LSB).min(axis=0), np.where(nonzero, e, _NO_EXP).max(axis=0).astype(np.int64))
+
+
+def sums_are_exact(lsb: NDArray[np.int64], top: NDArray[np.int64], n_terms: int) -> bool:
+    """True when every ``sum_i r_ij r_ik`` over ``n_terms`` rows is exact in the extended type.
+
+    Each product is a multiple of ``2^(lsb_j + lsb_k)`` below ``2^(top_j + top_k)``; a
+    sum of ``n`` of them needs ``top_j + top_k - lsb_j - lsb_k + log2 n`` significand bits.
+    """
+    present = lsb < _NO_LSB
+    if not present.any():
+        return True
+    span = int((top[present] - lsb[present]).max())
+    bits = np.finfo(EXTENDED).nmant + 1
+    return 2 * span + max(int(n_terms), 1).bit_length() <= bits
+
+
+_NO_LSB = 1 << 20
+_NO_EXP = -(1 << 20)
 
 
 def split_pairs(gram: NDArray[np.longdouble]) -> NDArray[np.float64]:

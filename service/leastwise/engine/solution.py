@@ -111,7 +111,7 @@ class Excitation:
 
 def solve(
     factor: NDArray[np.float64], spec: Spec, prior_weight: float, weight_sum: float,
-    gram: NDArray[np.longdouble] | None = None, n_terms: float = 0.0,
+    gram: NDArray[np.longdouble] | None = None, exact_sums: bool = False,
 ) -> Solution:
     """Solve the factored weighted ridge problem (see the module docstring for the formulas).
 
@@ -128,7 +128,7 @@ def solve(
     if identifiable:
         rcond, info = dtrcon(R / colnorm, norm="1", uplo="U", diag="N")
         rcond = float(rcond) if math.isfinite(rcond) else 0.0
-        identifiable = info == 0 and rcond > RCOND_TOL
+        identifiable = bool(info == 0 and rcond > RCOND_TOL)
     extra = 0.0
     svd = None
     refined = False
@@ -136,7 +136,7 @@ def solve(
         w, info = dtrtrs(R, z, lower=0, trans=0)
         w = np.asarray(w, dtype=np.float64).reshape(d)
         if gram is not None:
-            w, refined = refine(R, rcond, w, gram)
+            w, refined = refine(R, colnorm, w, gram, exact_sums)
         rank = d
         unidentified = np.zeros((0, d))
         if info != 0 or not np.isfinite(w).all():  # pragma: no cover - excluded by the tests above

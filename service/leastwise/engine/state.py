@@ -16,17 +16,17 @@ the factor is advanced (see :mod:`leastwise.engine.factor`).
 from __future__ import annotations
 
 import math
-import warnings
 from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike
+from scipy.linalg.blas import dnrm2 as _nrm2
 from scipy.linalg.blas import dtrsv
 
 from .errors import DimensionError, NonFiniteError, TimeOrderError
 from scipy.linalg.lapack import dtpqrt as _tpqrt
 
 from .factor import BLOCK_CHUNK, absorb_rows, new_factor
-from .gram import FOLD_ROWS, EXTENDED, fold, new_gram
+from .gram import _NO_EXP, _NO_LSB, EXTENDED, FOLD_ROWS, fold, new_gram, sums_are_exact, value_span
 from .solution import Excitation, Prediction, Solution, excitation, inverse_moment, predict, solve
 from .spec import Spec
 
@@ -42,10 +42,8 @@ MAX_ABS_VALUE = 1e100
 LEVERAGE_LIMIT = 1e24
 
 _MAX_SQUARED_NORM = MAX_ABS_VALUE * MAX_ABS_VALUE
+_FLOAT64 = np.dtype(np.float64)
 
-# An unexcited direction makes u = R^{-T} x overflow; that is detected and handled
-# below (leverage not finite), so numpy's warning about it is noise.
-warnings.filterwarnings("ignore", message="overflow encountered in dot", category=RuntimeWarning, module=__name__)
 
 
 @dataclass(slots=True)
@@ -84,6 +82,7 @@ class State:
         "spec", "_factor", "n", "prior_weight", "weight_sum", "weight_sq_sum",
         "first_time", "last_time", "_solution", "_sigma",
         "_gram", "_pending", "_pending_decay", "_pending_n", "gram_exact",
+        "_span_lsb", "_span_top", "_sums_exact",
     )
 
     def __init__(self, spec: Spec) -> None:
@@ -108,6 +107,11 @@ class State:
         self._pending_n = 0
         #: False once a block backfill added rows to the Gram matrix in double precision
         self.gram_exact = True
+        # Bit span of the folded values, to tell when the Gram sums are free of rounding
+        # (never under forgetting or a ridge prior: their weights are rounded products).
+        self._span_lsb = np.full(spec.dim + 1, _NO_LSB, dtype=np.int64)
+        self._span_top = np.full(spec.dim + 1, _NO_EXP, dtype=np.int64)
+        self._sums_exact = not spec.forgets and spec.ridge == 0.0
 
     # ------------------------------------------------------------------ views
     @property
@@ -125,7 +129,15 @@ class State:
         """Coefficients, identifiability, sigma and the moment matrices (cached per state)."""
         if self._solution is None:
             gram = self.gram() if self.gram_exact else None
-            self._solution = solve(self._factor, self.spec, self.prior_weight, self.weight_sum, gram, self.n)
+            exact = False
+            if gram is not None and self._sums_exact:
+                lsb, top = self._span_lsb, self._span_top
+                k = self._pending_n
+                if k:
+                    plsb, ptop = value_span(self._pending[:k])
+                    lsb, top = np.minimum(lsb, plsb), np.maximum(top, ptop)
+                exact = sums_are_exact(lsb, top, self.n)
+            self._solution = solve(self._factor, self.spec, self.prior_weight, self.weight_sum, gram, exact)
         return self._solution
 
     def gram(self) -> np.ndarray:
@@ -168,10 +180,17 @@ class State:
 
         The state is unchanged when an error is raised.
         """
-        xv = self._check_vector(x)
+        if type(x) is np.ndarray and x.dtype == _FLOAT64 and x.ndim == 1 and x.shape[0] == self.spec.dim:
+            xv = x  # fast path: already a float vector of the right length
+            if not float(_nrm2(xv)) <= MAX_ABS_VALUE:  # NaN and inf fail too; dnrm2 cannot overflow
+                raise NonFiniteError(f"x must be finite with Euclidean norm at most {MAX_ABS_VALUE:g}")
+        else:
+            xv = self._check_vector(x)
         yv = _check_scalar(y, "y")
-        decay = self._decay_for(_check_time(t) if t is not None else None)
-        return self._absorb_one(xv, yv, t, decay)
+        if t is None and self.spec.half_life is None:
+            return self._absorb_one(xv, yv, None, self.spec.forgetting)
+        tv = _check_time(t) if t is not None else None
+        return self._absorb_one(xv, yv, tv, self._decay_for(tv))
 
     def update_many(
         self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None = None
@@ -205,6 +224,8 @@ class State:
         total_decay = float(tail[0] * decays[0])
         scale = np.sqrt(tail)
         self._gram = self.gram()
+        if self._sums_exact and self._pending_n:
+            self._merge_span(self._pending[: self._pending_n])
         self._pending_n = 0
         if total_decay != 1.0:
             self._factor *= math.sqrt(total_decay)
@@ -246,7 +267,10 @@ class State:
         sigma = self._sigma if self._sigma >= 0.0 else self._sigma_now()
         # u solves R^T u = x: x^T (f A)^{-1} x = u.u / f and x^T w = u.z (w is unchanged by decay).
         u = dtrsv(factor[:d, :d], x, trans=1)
-        leverage = float(np.dot(u, u)) / decay
+        # decay == 0 (a gap of over ~1074 half-lives) forgets everything: no information along x.
+        # dnrm2 scales internally: no overflow warning when x lies along an unexcited direction.
+        norm_u = float(_nrm2(u))
+        leverage = norm_u * norm_u / decay if decay > 0.0 else math.inf
         recursive: float | None = None
         lev: float | None = None
         prediction = math.inf
@@ -277,6 +301,8 @@ class State:
         self._factor = _tpqrt(0, _nb(d + 1), factor, row, overwrite_a=1, overwrite_b=0)[0]
         if k + 1 == FOLD_ROWS:
             self._gram = fold(self._gram, self._pending, self._pending_decay)
+            if self._sums_exact:
+                self._merge_span(self._pending)
             self._pending_n = 0
         else:
             self._pending_n = k + 1
@@ -292,10 +318,17 @@ class State:
         self._sigma = -1.0
         return Step(prediction, residual, lev, recursive, standardized, decay)
 
+    def _merge_span(self, rows: np.ndarray) -> None:
+        lsb, top = value_span(rows)
+        np.minimum(self._span_lsb, lsb, out=self._span_lsb)
+        np.maximum(self._span_top, top, out=self._span_top)
+
     def _sigma_now(self) -> float | None:
-        """Sigma of the current state, cheaply (no condition estimate); ``None`` if not estimable."""
-        if self._solution is not None:
-            return self._solution.sigma
+        """Sigma of the current state from the factor alone; ``None`` if not estimable.
+
+        Deliberately independent of the cached :meth:`solution`, so what an update
+        reports never depends on whether the state was read before it.
+        """
         if self._sigma >= 0.0:
             return self._sigma or None
         d = self.dim
@@ -345,15 +378,17 @@ class State:
         return out
 
     def _check_vector(self, x: ArrayLike) -> np.ndarray:
+        _reject_booleans(x, "x")
         xv = np.asarray(x, dtype=np.float64)
         if xv.shape != (self.dim,):
             raise DimensionError(f"x must have {self.dim} values, got shape {xv.shape}")
-        # One dot product checks both: NaN/inf propagate, and |x_j| <= ||x|| <= MAX_ABS_VALUE.
-        if not float(np.dot(xv, xv)) <= _MAX_SQUARED_NORM:
+        # One norm checks both: NaN/inf propagate, and |x_j| <= ||x|| <= MAX_ABS_VALUE.
+        if not float(_nrm2(xv)) <= MAX_ABS_VALUE:
             raise NonFiniteError(f"x must be finite with Euclidean norm at most {MAX_ABS_VALUE:g}")
         return xv
 
     def _check_matrix(self, rows: ArrayLike) -> np.ndarray:
+        _reject_booleans(rows, "x")
         x = np.asarray(rows, dtype=np.float64)
         if x.ndim == 1:
             x = x[None, :]
@@ -365,6 +400,10 @@ class State:
     def _check_batch(
         self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None
     ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+        _reject_booleans(rows, "x")
+        _reject_booleans(ys, "y")
+        if times is not None:
+            _reject_booleans(times, "time")
         x = np.asarray(rows, dtype=np.float64)
         if x.ndim != 2 or x.shape[1] != self.dim:
             raise DimensionError(f"rows must be k x {self.dim}, got shape {x.shape}")
@@ -402,11 +441,31 @@ class State:
         return f"State(dim={self.dim}, n={self.n}, forgetting={self.spec.forgetting}, half_life={self.spec.half_life}, ridge={self.spec.ridge})"
 
 
+def _reject_booleans(value: object, field: str) -> None:
+    """numpy turns True/False into 1.0/0.0 silently; a boolean reading is a client error."""
+    if isinstance(value, np.ndarray):
+        if value.dtype.kind == "b" or (value.dtype.kind == "O" and any(isinstance(v, (bool, np.bool_)) for v in value.flat)):
+            raise NonFiniteError(f"{field} must be numbers, not booleans")
+        return
+    if isinstance(value, (bool, np.bool_)):
+        raise NonFiniteError(f"{field} must be numbers, not booleans")
+    if isinstance(value, (list, tuple)):
+        for v in value:
+            if isinstance(v, (bool, np.bool_)):
+                raise NonFiniteError(f"{field} must be numbers, not booleans")
+            if isinstance(v, (list, tuple, np.ndarray)):
+                _reject_booleans(v, field)
+
+
 def _check_finite(a: np.ndarray, field: str) -> None:
-    if a.size and not (np.isfinite(a).all() and np.abs(a).max() <= MAX_ABS_VALUE):
+    """One pass: NaN and inf fail the comparison, and |v| <= (row) norm <= MAX_ABS_VALUE."""
+    if not a.size:
+        return
+    if a.ndim == 2:
+        if not (np.einsum("ij,ij->i", a, a) <= _MAX_SQUARED_NORM).all():
+            raise NonFiniteError(f"each row of {field} must be finite with Euclidean norm at most {MAX_ABS_VALUE:g}")
+    elif not (np.abs(a) <= MAX_ABS_VALUE).all():
         raise NonFiniteError(f"{field} must be finite with magnitude at most {MAX_ABS_VALUE:g}")
-    if a.ndim == 2 and field == "x" and not (np.einsum("ij,ij->i", a, a) <= _MAX_SQUARED_NORM).all():
-        raise NonFiniteError(f"each row of x must have Euclidean norm at most {MAX_ABS_VALUE:g}")
 
 
 def _nb(n: int) -> int:

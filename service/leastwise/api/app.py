@@ -1,0 +1,36 @@
+"""The FastAPI application: routes, problem handlers, request log, registry on ``app.state``."""
+
+from __future__ import annotations
+
+from fastapi import FastAPI
+
+from leastwise import __version__
+from leastwise.models import Registry
+from leastwise.settings import Settings
+from leastwise.store import Store
+
+from .middleware import RequestLog
+from .problems import install_handlers
+from .routes import router
+
+__all__ = ["create_app", "build_registry"]
+
+
+def build_registry(settings: Settings) -> Registry:
+    """Open the database (running migrations) and make the registry."""
+    store = Store.open(settings.database, pool_size=settings.pool_size)
+    return Registry(store, checkpoint_every=settings.checkpoint_every, compact_log=settings.compact_log,
+                    max_batch=settings.max_batch)
+
+
+def create_app(settings: Settings | None = None, registry: Registry | None = None) -> FastAPI:
+    """The ASGI app. Without ``registry`` one is built from ``settings`` (the database is opened now)."""
+    settings = settings or Settings.from_env()
+    registry = registry or build_registry(settings)
+    app = FastAPI(title="leastwise", version=__version__, docs_url="/docs", redoc_url=None)
+    app.state.settings = settings
+    app.state.registry = registry
+    install_handlers(app)
+    app.include_router(router)
+    app.add_middleware(RequestLog)
+    return app

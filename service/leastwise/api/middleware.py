@@ -1,0 +1,49 @@
+"""One structured log line per request (pure ASGI, so it costs little)."""
+
+from __future__ import annotations
+
+import logging
+import time
+from typing import Any
+
+from leastwise.logging import request_logger
+
+__all__ = ["RequestLog"]
+
+
+class RequestLog:
+    """Logs method, path, status, duration (ms), the model name and the client address; never bodies or headers."""
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+    async def __call__(self, scope: dict, receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        start = time.perf_counter()
+        status = 500
+
+        async def _send(message: dict) -> None:
+            nonlocal status
+            if message["type"] == "http.response.start":
+                status = message["status"]
+            await send(message)
+
+        try:
+            await self.app(scope, receive, _send)
+        finally:
+            if request_logger.isEnabledFor(logging.INFO):
+                path = scope.get("path", "")
+                parts = path.split("/")
+                extra = {
+                    "method": scope.get("method"),
+                    "path": path,
+                    "status": status,
+                    "duration_ms": round((time.perf_counter() - start) * 1000.0, 3),
+                    "client": (scope.get("client") or ("", 0))[0],
+                }
+                if len(parts) > 3 and parts[1] == "v1" and parts[2] == "models":
+                    extra["model"] = parts[3]
+                level = logging.WARNING if status >= 500 else logging.INFO
+                request_logger.log(level, "request", extra=extra)

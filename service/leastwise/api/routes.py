@@ -1,0 +1,147 @@
+"""The REST contract v1 (see DESIGN.md). Handlers read and decode the body, then hand over to the registry in a worker thread."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import orjson
+from fastapi import APIRouter, Request
+from starlette.concurrency import run_in_threadpool
+from starlette.responses import Response
+
+from leastwise.models import FieldError, Registry
+
+from .body import MISSING, read_json
+from .problems import Problem
+
+__all__ = ["router", "json_response"]
+
+router = APIRouter()
+
+
+def _default(value: Any) -> Any:
+    item = getattr(value, "item", None)  # numpy scalars
+    if item is not None:
+        return item()
+    raise TypeError(f"{type(value).__name__} is not JSON serialisable")
+
+
+def json_response(data: Any, status: int = 200, headers: dict[str, str] | None = None) -> Response:
+    return Response(orjson.dumps(data, default=_default), status_code=status, media_type="application/json",
+                    headers=headers)
+
+
+def _registry(request: Request) -> Registry:
+    return request.app.state.registry
+
+
+def _limit(request: Request) -> int:
+    return request.app.state.settings.max_body_bytes
+
+
+def _snapshot_id(raw: str) -> int:
+    if not raw.isdigit() or len(raw) > 18:
+        raise Problem(404, "not-found", f"no snapshot {raw!r}: snapshot ids are positive integers",
+                      [FieldError("id", "must be a positive integer")])
+    return int(raw)
+
+
+def _etag_matches(header: str | None, etag: str) -> bool:
+    if not header:
+        return False
+    if header.strip() == "*":
+        return True
+    tags = [t.strip() for t in header.split(",")]
+    return any(t == etag or t.removeprefix("W/") == etag for t in tags)
+
+
+@router.get("/healthz")
+async def healthz() -> Response:
+    return json_response({"status": "ok"})
+
+
+@router.get("/v1/models")
+async def list_models(request: Request) -> Response:
+    models = await run_in_threadpool(_registry(request).list)
+    return json_response({"models": models})
+
+
+@router.put("/v1/models/{name}")
+async def put_model(name: str, request: Request) -> Response:
+    body = await read_json(request, _limit(request))
+    out, created = await run_in_threadpool(_registry(request).create, name, body)
+    return json_response(out, 201 if created else 200, {"Location": f"/v1/models/{name}"} if created else None)
+
+
+@router.get("/v1/models/{name}")
+async def get_model(name: str, request: Request) -> Response:
+    registry = _registry(request)
+    wanted = request.headers.get("if-none-match")
+    if wanted:
+        etag = await run_in_threadpool(registry.etag, name)
+        if _etag_matches(wanted, etag):
+            return Response(status_code=304, headers={"ETag": etag, "Cache-Control": "no-cache"})
+    out, etag = await run_in_threadpool(registry.get, name)
+    return json_response(out, headers={"ETag": etag, "Cache-Control": "no-cache"})
+
+
+@router.delete("/v1/models/{name}")
+async def delete_model(name: str, request: Request) -> Response:
+    await run_in_threadpool(_registry(request).delete, name)
+    return Response(status_code=204)
+
+
+@router.post("/v1/models/{name}/observations")
+async def post_observations(name: str, request: Request) -> Response:
+    body = await read_json(request, _limit(request))
+    out = await run_in_threadpool(_registry(request).observe, name, body)
+    return json_response(out)
+
+
+@router.post("/v1/models/{name}/predict")
+async def post_predict(name: str, request: Request) -> Response:
+    body = await read_json(request, _limit(request))
+    out = await run_in_threadpool(_registry(request).predict, name, body)
+    return json_response(out)
+
+
+@router.get("/v1/models/{name}/drift")
+async def get_drift(name: str, request: Request) -> Response:
+    return json_response(await run_in_threadpool(_registry(request).drift, name))
+
+
+@router.get("/v1/models/{name}/covariance")
+async def get_covariance(name: str, request: Request) -> Response:
+    return json_response(await run_in_threadpool(_registry(request).covariance, name))
+
+
+@router.post("/v1/models/{name}/reset")
+async def post_reset(name: str, request: Request) -> Response:
+    await read_json(request, _limit(request), optional=True)
+    return json_response(await run_in_threadpool(_registry(request).reset, name))
+
+
+@router.post("/v1/models/{name}/snapshots")
+async def post_snapshot(name: str, request: Request) -> Response:
+    body = await read_json(request, _limit(request), optional=True)
+    out = await run_in_threadpool(_registry(request).snapshot, name, None if body is MISSING else body)
+    return json_response(out, 201, {"Location": f"/v1/models/{name}/snapshots/{out['id']}"})
+
+
+@router.get("/v1/models/{name}/snapshots")
+async def get_snapshots(name: str, request: Request) -> Response:
+    return json_response({"snapshots": await run_in_threadpool(_registry(request).snapshots, name)})
+
+
+@router.post("/v1/models/{name}/snapshots/{snapshot}/restore")
+async def post_restore(name: str, snapshot: str, request: Request) -> Response:
+    await read_json(request, _limit(request), optional=True)
+    sid = _snapshot_id(snapshot)
+    return json_response(await run_in_threadpool(_registry(request).restore, name, sid))
+
+
+@router.delete("/v1/models/{name}/snapshots/{snapshot}")
+async def delete_snapshot(name: str, snapshot: str, request: Request) -> Response:
+    sid = _snapshot_id(snapshot)
+    await run_in_threadpool(_registry(request).delete_snapshot, name, sid)
+    return Response(status_code=204)

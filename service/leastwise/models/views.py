@@ -1,0 +1,93 @@
+"""Plain-dict views of a model's state for the API (JSON-ready; never NaN or infinity)."""
+
+from __future__ import annotations
+
+import math
+from datetime import datetime, timezone
+from typing import Any
+
+import numpy as np
+
+from leastwise.engine import State, Step
+
+from .config import ModelConfig
+
+__all__ = ["rfc3339", "finite", "by_name", "state_view", "step_view", "prediction_view", "covariance_view"]
+
+
+def rfc3339(t: float | None) -> str | None:
+    if t is None:
+        return None
+    try:
+        return datetime.fromtimestamp(t, tz=timezone.utc).isoformat().replace("+00:00", "Z")
+    except (OverflowError, OSError, ValueError):
+        return None
+
+
+def finite(v: float | None) -> float | None:
+    if v is None:
+        return None
+    v = float(v)
+    return v if math.isfinite(v) else None
+
+
+def by_name(config: ModelConfig, values: np.ndarray) -> dict[str, float | None]:
+    return {name: finite(v) for name, v in zip(config.terms, values.tolist())}
+
+
+def state_view(config: ModelConfig, view: State) -> dict[str, Any]:
+    """Coefficients by name, counts, sigma and identifiability of a state (``view`` may cache its solution)."""
+    sol = view.solution()
+    return {
+        "n": view.n,
+        "effective_n": finite(view.effective_n),
+        "identifiable": bool(sol.identifiable),
+        "rank": sol.rank,
+        "coefficients": by_name(config, sol.coefficients),
+        "sigma": finite(sol.sigma),
+        "rss": finite(sol.rss),
+        "dof": finite(sol.dof),
+        "unidentified_directions": [by_name(config, row) for row in sol.unidentified],
+        "last_time": rfc3339(view.last_time),
+    }
+
+
+def step_view(step: Step, seq: int, t: float | None) -> dict[str, Any]:
+    return {
+        "status": "applied",
+        "seq": seq,
+        "prediction": finite(step.prediction),
+        "residual": finite(step.residual),
+        "recursive_residual": finite(step.recursive_residual),
+        "standardized_residual": finite(step.standardized_residual),
+        "leverage": finite(step.leverage),
+        "time": t,
+    }
+
+
+def prediction_view(pred: Any, i: int) -> dict[str, Any]:
+    return {
+        "mean": finite(pred.mean[i]),
+        "se_fit": finite(pred.se_fit[i]),
+        "se_prediction": finite(pred.se_prediction[i]),
+        "lower": finite(pred.lower[i]),
+        "upper": finite(pred.upper[i]),
+    }
+
+
+def _matrix(m: np.ndarray | None) -> list[list[float | None]] | None:
+    """Rows and columns in ``terms`` order."""
+    if m is None:
+        return None
+    return [[finite(v) for v in row] for row in m.tolist()]
+
+
+def covariance_view(config: ModelConfig, view: State) -> dict[str, Any]:
+    sol = view.solution()
+    return {
+        "terms": list(config.terms),
+        "identifiable": bool(sol.identifiable),
+        "sigma": finite(sol.sigma),
+        "inverse_moment": _matrix(view.inverse_moment()),
+        "covariance": _matrix(view.covariance()),
+    }

@@ -1,0 +1,89 @@
+"""Service settings: command-line options over ``LEASTWISE_*`` environment variables over defaults.
+
+| setting | env variable | default |
+|---|---|---|
+| host | ``LEASTWISE_HOST`` | ``127.0.0.1`` (loopback only until access tokens exist) |
+| port | ``LEASTWISE_PORT`` | ``8622`` |
+| database | ``LEASTWISE_DATABASE`` | ``sqlite:///leastwise.sqlite3`` in the working folder |
+| checkpoint_every | ``LEASTWISE_CHECKPOINT_EVERY`` | ``1000`` observations between checkpoints |
+| compact_log | ``LEASTWISE_COMPACT_LOG`` | ``false``: keep the whole observation log |
+| max_body_bytes | ``LEASTWISE_MAX_BODY_BYTES`` | ``1048576`` (1 MiB) |
+| max_batch | ``LEASTWISE_MAX_BATCH`` | ``10000`` observations or prediction rows per request |
+| log_level | ``LEASTWISE_LOG_LEVEL`` | ``info`` |
+| pool_size | ``LEASTWISE_POOL_SIZE`` | ``8`` database connections kept open (plus overflow) |
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, fields, replace
+from typing import Any
+
+__all__ = ["Settings", "DEFAULT_DATABASE", "LIMIT_BODY_BYTES", "LIMIT_BATCH"]
+
+DEFAULT_DATABASE = "sqlite:///leastwise.sqlite3"
+LIMIT_BODY_BYTES = 1 << 20
+LIMIT_BATCH = 10_000
+
+_TRUE = {"1", "true", "yes", "on"}
+_FALSE = {"0", "false", "no", "off", ""}
+
+
+@dataclass(frozen=True, slots=True)
+class Settings:
+    """Everything the service reads at start-up."""
+
+    host: str = "127.0.0.1"
+    port: int = 8622
+    database: str = DEFAULT_DATABASE
+    checkpoint_every: int = 1000
+    compact_log: bool = False
+    max_body_bytes: int = LIMIT_BODY_BYTES
+    max_batch: int = LIMIT_BATCH
+    log_level: str = "info"
+    pool_size: int = 8
+
+    def __post_init__(self) -> None:
+        if not 1 <= self.port <= 65535:
+            raise ValueError("port must be in 1..65535")
+        if self.checkpoint_every < 1:
+            raise ValueError("checkpoint_every must be >= 1")
+        if self.max_body_bytes < 1024:
+            raise ValueError("max_body_bytes must be >= 1024")
+        if self.max_batch < 1:
+            raise ValueError("max_batch must be >= 1")
+        if self.pool_size < 1:
+            raise ValueError("pool_size must be >= 1")
+
+    @classmethod
+    def from_env(cls, environ: dict[str, str] | None = None, **overrides: Any) -> "Settings":
+        """Read ``LEASTWISE_<FIELD>`` variables; keyword overrides that are not ``None`` win."""
+        env = os.environ if environ is None else environ
+        values: dict[str, Any] = {}
+        for f in fields(cls):
+            raw = env.get(f"LEASTWISE_{f.name.upper()}")
+            if raw is None:
+                continue
+            values[f.name] = _convert(f.name, f.type, raw)
+        values.update({k: v for k, v in overrides.items() if v is not None})
+        return cls(**values)
+
+    def with_(self, **changes: Any) -> "Settings":
+        return replace(self, **changes)
+
+
+def _convert(name: str, kind: Any, raw: str) -> Any:
+    kind = kind if isinstance(kind, str) else getattr(kind, "__name__", str(kind))
+    if kind == "int":
+        try:
+            return int(raw)
+        except ValueError:
+            raise ValueError(f"LEASTWISE_{name.upper()} must be an integer, got {raw!r}") from None
+    if kind == "bool":
+        low = raw.strip().lower()
+        if low in _TRUE:
+            return True
+        if low in _FALSE:
+            return False
+        raise ValueError(f"LEASTWISE_{name.upper()} must be true or false, got {raw!r}")
+    return raw

@@ -1,0 +1,92 @@
+"""Opening the database: engine options per backend, SQLite durability pragmas, migrations.
+
+SQLite runs in WAL mode with ``synchronous=FULL`` (a commit is on disk before
+it returns, so a power cut loses nothing acknowledged) and ``BEGIN IMMEDIATE``
+write transactions (the write lock is taken up front, so two writers queue on
+``busy_timeout`` instead of failing on a lock upgrade). PostgreSQL is reached
+with ``postgresql+psycopg://``; migrations there run under an advisory lock so
+several processes may start at once.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from sqlalchemy import create_engine, event, text
+from sqlalchemy.engine import Connection, Engine, make_url
+
+__all__ = ["open_engine", "migrate", "is_sqlite", "WRITE"]
+
+#: execution option marking a connection whose transaction will write
+WRITE = "leastwise_write"
+
+_MIGRATION_LOCK = 0x6C65617374  # "least"
+_MIGRATIONS = Path(__file__).resolve().parent / "migrations"
+
+
+def is_sqlite(engine: Engine) -> bool:
+    return engine.dialect.name == "sqlite"
+
+
+def open_engine(url: str, *, pool_size: int = 8) -> Engine:
+    """A SQLAlchemy engine for ``url`` (``sqlite:///path`` or ``postgresql+psycopg://...``)."""
+    parsed = make_url(url)
+    if parsed.get_backend_name() == "sqlite":
+        database = parsed.database or ""
+        if database and database != ":memory:" and not database.startswith("file:"):
+            Path(database).expanduser().parent.mkdir(parents=True, exist_ok=True)
+        engine = create_engine(
+            parsed,
+            pool_size=pool_size,
+            max_overflow=32,
+            connect_args={"check_same_thread": False, "timeout": 30.0},
+        )
+        _sqlite_hooks(engine)
+        return engine
+    if parsed.get_backend_name() == "postgresql":
+        return create_engine(parsed, pool_size=pool_size, max_overflow=32, pool_pre_ping=True)
+    raise ValueError(f"unsupported database {parsed.get_backend_name()!r}: use sqlite:/// or postgresql+psycopg://")
+
+
+def _sqlite_hooks(engine: Engine) -> None:
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_connection, _record) -> None:  # noqa: ANN001
+        dbapi_connection.isolation_level = None  # transactions are begun below, explicitly
+        cursor = dbapi_connection.cursor()
+        cursor.execute("PRAGMA journal_mode=WAL")
+        cursor.execute("PRAGMA synchronous=FULL")
+        cursor.execute("PRAGMA foreign_keys=ON")
+        cursor.execute("PRAGMA busy_timeout=30000")
+        cursor.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn: Connection) -> None:
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if conn.get_execution_options().get(WRITE) else "BEGIN")
+
+
+def migrate(engine: Engine) -> str:
+    """Bring the schema to the newest revision (alembic); returns that revision."""
+    from alembic import command
+    from alembic.config import Config
+    from alembic.runtime.migration import MigrationContext
+    from alembic.script import ScriptDirectory
+
+    config = Config()
+    config.set_main_option("script_location", str(_MIGRATIONS))
+    head = ScriptDirectory.from_config(config).get_current_head()
+    with engine.connect() as conn:
+        if engine.dialect.name == "postgresql":
+            conn.execute(text("SELECT pg_advisory_lock(:k)"), {"k": _MIGRATION_LOCK})
+            conn.commit()
+        try:
+            current = MigrationContext.configure(conn).get_current_revision()
+            conn.rollback()
+            if current != head:
+                config.attributes["connection"] = conn
+                command.upgrade(config, "head")
+                conn.commit()
+        finally:
+            if engine.dialect.name == "postgresql":
+                conn.execute(text("SELECT pg_advisory_unlock(:k)"), {"k": _MIGRATION_LOCK})
+                conn.commit()
+    return head or ""

@@ -1,0 +1,1 @@
+"""Alembic migrations of the leastwise schema, shipped with the package and run on start."""

@@ -1,0 +1,254 @@
+"""Queries on the leastwise tables. Plain data in, plain data out; no maths here."""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import dataclass
+
+from sqlalchemy import delete, func, insert, select, update
+from sqlalchemy.engine import Connection
+
+from .tables import checkpoints, idempotency_keys, models, observations, snapshots
+
+__all__ = [
+    "ModelRow", "LogRow", "CheckpointRow", "SnapshotRow", "PendingWrite",
+    "insert_model", "model_by_name", "list_models", "lock_model", "delete_model", "bump_model",
+    "latest_checkpoint", "insert_checkpoint", "log_after", "find_keys", "write_pending",
+    "insert_snapshot", "list_snapshots", "get_snapshot", "delete_snapshot", "compact",
+]
+
+
+@dataclass(frozen=True, slots=True)
+class ModelRow:
+    id: int
+    name: str
+    config: str
+    version: int
+    seq: int
+    epoch: int
+    created: float
+
+
+@dataclass(frozen=True, slots=True)
+class LogRow:
+    """One applied observation of the log."""
+
+    seq: int
+    x: bytes
+    y: float
+    t: float | None
+    key: str | None
+    status: str = "applied"
+    received: float = 0.0
+
+
+@dataclass(frozen=True, slots=True)
+class CheckpointRow:
+    version: int
+    seq: int
+    state: bytes
+    drift: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class SnapshotRow:
+    id: int
+    model_id: int
+    label: str | None
+    created: float
+    version: int
+    n: int
+    state: bytes | None = None
+    drift: bytes | None = None
+
+
+@dataclass(slots=True)
+class PendingWrite:
+    """Everything one request adds to one model, prepared before the transaction.
+
+    :func:`write_pending` applies a list of them in one transaction, so the
+    commits of many requests can be grouped. ``expected_version`` is the
+    version the rows were computed from; a write whose model moved on is
+    rejected (``accepted = False``) and must be recomputed.
+    """
+
+    model_id: int
+    expected_version: int
+    new_version: int
+    new_seq: int
+    rows: Sequence[LogRow]
+    checkpoint: CheckpointRow | None = None
+    new_epoch: int | None = None
+    compact: bool = False
+    accepted: bool = False
+
+
+def _model(row) -> ModelRow:  # noqa: ANN001
+    return ModelRow(row.id, row.name, row.config, row.version, row.seq, row.epoch, row.created)
+
+
+def insert_model(conn: Connection, name: str, config: str, created: float, checkpoint: CheckpointRow) -> ModelRow:
+    result = conn.execute(
+        insert(models).values(name=name, config=config, version=checkpoint.version, seq=checkpoint.seq, epoch=0, created=created)
+    )
+    model_id = int(result.inserted_primary_key[0])
+    insert_checkpoint(conn, model_id, checkpoint, created)
+    return ModelRow(model_id, name, config, checkpoint.version, checkpoint.seq, 0, created)
+
+
+def model_by_name(conn: Connection, name: str) -> ModelRow | None:
+    row = conn.execute(select(models).where(models.c.name == name)).first()
+    return _model(row) if row is not None else None
+
+
+def list_models(conn: Connection) -> list[ModelRow]:
+    return [_model(r) for r in conn.execute(select(models).order_by(models.c.name))]
+
+
+def lock_model(conn: Connection, model_id: int) -> ModelRow | None:
+    """The model row, locked for the rest of the transaction (``FOR UPDATE``; SQLite locks the database)."""
+    row = conn.execute(select(models).where(models.c.id == model_id).with_for_update()).first()
+    return _model(row) if row is not None else None
+
+
+def bump_model(conn: Connection, model_id: int, version: int, seq: int, epoch: int | None = None) -> None:
+    values = {"version": version, "seq": seq}
+    if epoch is not None:
+        values["epoch"] = epoch
+    conn.execute(update(models).where(models.c.id == model_id).values(**values))
+
+
+def delete_model(conn: Connection, model_id: int) -> None:
+    """Remove the model and everything recorded for it."""
+    for table in (idempotency_keys, snapshots, checkpoints, observations):
+        conn.execute(delete(table).where(table.c.model_id == model_id))
+    conn.execute(delete(models).where(models.c.id == model_id))
+
+
+def latest_checkpoint(conn: Connection, model_id: int) -> CheckpointRow | None:
+    row = conn.execute(
+        select(checkpoints.c.version, checkpoints.c.seq, checkpoints.c.state, checkpoints.c.drift)
+        .where(checkpoints.c.model_id == model_id)
+        .order_by(checkpoints.c.version.desc())
+        .limit(1)
+    ).first()
+    return CheckpointRow(row.version, row.seq, bytes(row.state), bytes(row.drift)) if row is not None else None
+
+
+def insert_checkpoint(conn: Connection, model_id: int, cp: CheckpointRow, created: float) -> None:
+    conn.execute(
+        insert(checkpoints).values(
+            model_id=model_id, version=cp.version, seq=cp.seq, state=cp.state, drift=cp.drift, created=created
+        )
+    )
+
+
+def log_after(conn: Connection, model_id: int, seq: int, upto: int | None = None) -> Iterator[LogRow]:
+    """Applied log rows with ``seq > seq`` (and ``<= upto``), in order."""
+    query = (
+        select(observations.c.seq, observations.c.x, observations.c.y, observations.c.t, observations.c.key)
+        .where(observations.c.model_id == model_id, observations.c.seq > seq, observations.c.status == "applied")
+        .order_by(observations.c.seq)
+    )
+    if upto is not None:
+        query = query.where(observations.c.seq <= upto)
+    for seq_, x, y, t, key in conn.execute(query):  # unpacked: ``Row.t`` is a Row attribute, not the column
+        yield LogRow(seq_, bytes(x), y, t, key)
+
+
+def find_keys(conn: Connection, model_id: int, keys: Iterable[str]) -> dict[str, int]:
+    """The keys among ``keys`` already recorded for the model, with the log seq they were applied at."""
+    wanted = list(dict.fromkeys(keys))
+    found: dict[str, int] = {}
+    for start in range(0, len(wanted), 500):
+        chunk = wanted[start : start + 500]
+        rows = conn.execute(
+            select(idempotency_keys.c.key, idempotency_keys.c.seq).where(
+                idempotency_keys.c.model_id == model_id, idempotency_keys.c.key.in_(chunk)
+            )
+        )
+        found.update({r.key: r.seq for r in rows})
+    return found
+
+
+def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) -> None:
+    """Apply prepared writes inside the caller's transaction.
+
+    Each model row is locked and its version compared with the write's
+    ``expected_version``; a stale write is skipped (``accepted`` stays False).
+    """
+    for w in writes:
+        row = lock_model(conn, w.model_id)
+        if row is None or row.version != w.expected_version:
+            w.accepted = False
+            continue
+        if w.rows:
+            conn.execute(
+                insert(observations),
+                [
+                    {"model_id": w.model_id, "seq": r.seq, "x": r.x, "y": r.y, "t": r.t, "key": r.key,
+                     "status": r.status, "received": r.received}
+                    for r in w.rows
+                ],
+            )
+            keyed = [{"model_id": w.model_id, "key": r.key, "seq": r.seq} for r in w.rows if r.key is not None]
+            if keyed:
+                conn.execute(insert(idempotency_keys), keyed)
+        if w.checkpoint is not None:
+            insert_checkpoint(conn, w.model_id, w.checkpoint, now)
+            if w.compact:
+                compact(conn, w.model_id)
+        bump_model(conn, w.model_id, w.new_version, w.new_seq, w.new_epoch)
+        w.accepted = True
+
+
+def compact(conn: Connection, model_id: int | None = None) -> int:
+    """Delete log rows and checkpoints no longer needed for recovery (below each model's newest checkpoint).
+
+    Keys stay in ``idempotency_keys``; snapshots keep their own state. Returns
+    the number of log rows removed.
+    """
+    removed = 0
+    ids = [model_id] if model_id is not None else [r.id for r in conn.execute(select(models.c.id))]
+    for mid in ids:
+        cp = latest_checkpoint(conn, mid)
+        if cp is None:
+            continue
+        removed += conn.execute(
+            delete(observations).where(observations.c.model_id == mid, observations.c.seq <= cp.seq)
+        ).rowcount or 0
+        conn.execute(delete(checkpoints).where(checkpoints.c.model_id == mid, checkpoints.c.version < cp.version))
+    return removed
+
+
+def insert_snapshot(conn: Connection, model_id: int, label: str | None, created: float, version: int, n: int,
+                    state: bytes, drift: bytes) -> SnapshotRow:
+    result = conn.execute(
+        insert(snapshots).values(model_id=model_id, label=label, created=created, version=version, n=n, state=state, drift=drift)
+    )
+    return SnapshotRow(int(result.inserted_primary_key[0]), model_id, label, created, version, n)
+
+
+def list_snapshots(conn: Connection, model_id: int) -> list[SnapshotRow]:
+    rows = conn.execute(
+        select(snapshots.c.id, snapshots.c.model_id, snapshots.c.label, snapshots.c.created, snapshots.c.version, snapshots.c.n)
+        .where(snapshots.c.model_id == model_id)
+        .order_by(snapshots.c.id)
+    )
+    return [SnapshotRow(r.id, r.model_id, r.label, r.created, r.version, r.n) for r in rows]
+
+
+def get_snapshot(conn: Connection, model_id: int, snapshot_id: int) -> SnapshotRow | None:
+    r = conn.execute(select(snapshots).where(snapshots.c.model_id == model_id, snapshots.c.id == snapshot_id)).first()
+    if r is None:
+        return None
+    return SnapshotRow(r.id, r.model_id, r.label, r.created, r.version, r.n, bytes(r.state), bytes(r.drift))
+
+
+def delete_snapshot(conn: Connection, model_id: int, snapshot_id: int) -> bool:
+    result = conn.execute(delete(snapshots).where(snapshots.c.model_id == model_id, snapshots.c.id == snapshot_id))
+    return (result.rowcount or 0) > 0
+
+
+def count_log(conn: Connection, model_id: int) -> int:
+    return int(conn.execute(select(func.count()).select_from(observations).where(observations.c.model_id == model_id)).scalar_one())

@@ -1,0 +1,34 @@
+"""The command line: serve refuses non-loopback addresses; settings from the environment."""
+
+from __future__ import annotations
+
+import pytest
+from click.testing import CliRunner
+
+from leastwise.cli import main
+from leastwise.serve import is_loopback
+from leastwise.settings import Settings
+
+
+@pytest.mark.parametrize("host", ["0.0.0.0", "192.168.1.10", "::", "example.invalid"])
+def test_serve_refuses_non_loopback(host):
+    result = CliRunner().invoke(main, ["serve", "--host", host, "--port", "8622"])
+    assert result.exit_code != 0
+    assert "loopback" in result.output
+
+
+def test_loopback_names():
+    assert is_loopback("127.0.0.1") and is_loopback("::1") and is_loopback("localhost") and is_loopback("127.0.0.2")
+
+
+def test_settings_from_env():
+    s = Settings.from_env({"LEASTWISE_PORT": "9000", "LEASTWISE_CHECKPOINT_EVERY": "5", "LEASTWISE_COMPACT_LOG": "yes"},
+                          database="sqlite:///x.db")
+    assert (s.port, s.checkpoint_every, s.compact_log, s.database) == (9000, 5, True, "sqlite:///x.db")
+    with pytest.raises(ValueError):
+        Settings.from_env({"LEASTWISE_PORT": "abc"})
+
+
+def test_demo_still_works():
+    result = CliRunner().invoke(main, ["demo", "--readings", "200"])
+    assert result.exit_code == 0, result.output

@@ -64,15 +64,22 @@ def _sqlite_hooks(engine: Engine) -> None:
         conn.exec_driver_sql("BEGIN IMMEDIATE" if conn.get_execution_options().get(WRITE) else "BEGIN")
 
 
-def migrate(engine: Engine) -> str:
-    """Bring the schema to the newest revision (alembic); returns that revision."""
-    from alembic import command
+def alembic_config():  # -> alembic.config.Config (imported lazily: alembic is only needed here)
+    """The alembic configuration of the shipped migrations."""
     from alembic.config import Config
-    from alembic.runtime.migration import MigrationContext
-    from alembic.script import ScriptDirectory
 
     config = Config()
     config.set_main_option("script_location", str(_MIGRATIONS))
+    return config
+
+
+def migrate(engine: Engine) -> str:
+    """Bring the schema to the newest revision (alembic); returns that revision."""
+    from alembic import command
+    from alembic.runtime.migration import MigrationContext
+    from alembic.script import ScriptDirectory
+
+    config = alembic_config()
     head = ScriptDirectory.from_config(config).get_current_head()
     with engine.connect() as conn:
         if engine.dialect.name == "postgresql":

@@ -9,6 +9,10 @@
 * ``checkpoints``: serialised state (engine bytes and residual-statistics bytes) at a log position.
 * ``snapshots``: operator-named copies of a state.
 * ``idempotency_keys``: every observation key seen per model (kept when the log is compacted).
+* ``drift_events``: drift status changes and alarms per model (statistic, value, threshold, since).
+* ``drift_references``: the reference point the drift statistics run from (start, reset or a snapshot).
+* ``tokens``: bearer tokens, stored only as hashes, with scope and model-name pattern.
+* ``audit``: operator actions and refused attempts, with the state version before and after.
 """
 
 from __future__ import annotations
@@ -28,7 +32,10 @@ from sqlalchemy import (
     UniqueConstraint,
 )
 
-__all__ = ["metadata", "models", "observations", "checkpoints", "snapshots", "idempotency_keys"]
+__all__ = [
+    "metadata", "models", "observations", "checkpoints", "snapshots", "idempotency_keys",
+    "drift_events", "drift_references", "tokens", "audit",
+]
 
 metadata = MetaData()
 
@@ -92,4 +99,60 @@ idempotency_keys = Table(
     Column("key", String(200), primary_key=True),
     Column("seq", BigInteger, nullable=False),
     UniqueConstraint("model_id", "key", name="uq_idempotency_model_key"),
+)
+
+drift_events = Table(
+    "drift_events",
+    metadata,
+    Column("id", Id, primary_key=True, autoincrement=True),
+    Column("model_id", Id, ForeignKey("models.id", ondelete="CASCADE"), nullable=False),
+    Column("at", Double, nullable=False),
+    Column("seq", BigInteger, nullable=False),
+    Column("status", String(16), nullable=False),
+    Column("statistic", String(64), nullable=False),
+    Column("value", Double, nullable=True),
+    Column("threshold", Double, nullable=True),
+    Column("since_seq", BigInteger, nullable=True),
+    Column("detail", Text, nullable=True),
+    Index("ix_drift_events_model", "model_id", "id"),
+)
+
+drift_references = Table(
+    "drift_references",
+    metadata,
+    Column("model_id", Id, ForeignKey("models.id", ondelete="CASCADE"), primary_key=True),
+    Column("kind", String(16), nullable=False),
+    Column("snapshot_id", Id, ForeignKey("snapshots.id", ondelete="SET NULL"), nullable=True),
+    Column("seq", BigInteger, nullable=False),
+    Column("version", BigInteger, nullable=False),
+    Column("at", Double, nullable=False),
+)
+
+tokens = Table(
+    "tokens",
+    metadata,
+    Column("id", Id, primary_key=True, autoincrement=True),
+    Column("label", String(200), nullable=False),
+    Column("scope", String(16), nullable=False),
+    Column("models", String(200), nullable=True),
+    Column("digest", String(128), nullable=False, unique=True),
+    Column("created", Double, nullable=False),
+    Column("revoked", Double, nullable=True),
+)
+
+audit = Table(
+    "audit",
+    metadata,
+    Column("id", Id, primary_key=True, autoincrement=True),
+    Column("at", Double, nullable=False),
+    Column("token_label", String(200), nullable=True),
+    Column("action", String(64), nullable=False),
+    Column("model", String(128), nullable=True),
+    Column("version_before", BigInteger, nullable=True),
+    Column("version_after", BigInteger, nullable=True),
+    Column("outcome", String(16), nullable=False),
+    Column("status", Integer, nullable=False),
+    Column("detail", Text, nullable=True),
+    Index("ix_audit_at", "at"),
+    Index("ix_audit_model", "model"),
 )

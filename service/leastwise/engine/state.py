@@ -186,7 +186,10 @@ class State:
                 raise NonFiniteError(f"x must be finite with Euclidean norm at most {MAX_ABS_VALUE:g}")
         else:
             xv = self._check_vector(x)
-        yv = _check_scalar(y, "y")
+        if type(y) is float and -MAX_ABS_VALUE <= y <= MAX_ABS_VALUE:
+            yv = y  # fast path; NaN fails the comparison and takes the checked path
+        else:
+            yv = _check_scalar(y, "y")
         if t is None and self.spec.half_life is None:
             return self._absorb_one(xv, yv, None, self.spec.forgetting)
         tv = _check_time(t) if t is not None else None
@@ -293,9 +296,10 @@ class State:
         if decay != 1.0:
             factor *= math.sqrt(decay)
         k = self._pending_n
-        row = self._pending[k:k + 1]
-        row[0, :d] = x
-        row[0, d] = y
+        pending = self._pending
+        pending[k, :d] = x
+        pending[k, d] = y
+        row = pending[k:k + 1]
         self._pending_decay[k] = decay
         # overwrite_b=0: LAPACK works on a copy, the buffered row stays for the Gram fold.
         self._factor = _tpqrt(0, _nb(d + 1), factor, row, overwrite_a=1, overwrite_b=0)[0]

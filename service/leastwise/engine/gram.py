@@ -3,9 +3,10 @@
 Besides the square-root factor the state keeps the weighted augmented Gram
 matrix ``G = [X y]^T B [X y] + b_0 delta diag(I, 0)`` in ``numpy.longdouble``
 (x86-64 80-bit extended: 64-bit significand, unit roundoff ``u_e = 2^-64``).
+It lives in the same scaled coordinates as the factor (true Gram = scale^2 G).
 Rows are buffered ``FOLD_ROWS`` at a time and folded in one product (the
-buffer and its decays are part of the state, and folding happens at fixed row
-counts, so the state stays deterministic and serialisable bit for bit).
+buffer is part of the state, and folding happens at fixed row counts, so the
+state stays deterministic and serialisable bit for bit).
 
 Why: the factor's solution ``w_0`` is backward stable, but for problems with
 large residuals its forward error carries the ``kappa^2 * residual`` term of
@@ -56,18 +57,12 @@ def new_gram(dim: int, ridge: float) -> NDArray[np.longdouble]:
     return gram
 
 
-def fold(gram: NDArray[np.longdouble], rows: NDArray[np.float64], decays: NDArray[np.float64]) -> NDArray[np.longdouble]:
-    """Return ``(prod f) G + sum_i (prod_{j>i} f_j) r_i r_i^T`` for the buffered rows ``r_i`` and decays ``f_i``."""
-    k = rows.shape[0]
-    if k == 0:
+def fold(gram: NDArray[np.longdouble], rows: NDArray[np.float64]) -> NDArray[np.longdouble]:
+    """Return ``G + R^T R`` for the buffered (already scaled) rows ``R``, in extended precision."""
+    if rows.shape[0] == 0:
         return gram
-    f = decays.astype(EXTENDED)
-    tail = np.ones(k, dtype=EXTENDED)
-    if k > 1:
-        tail[:-1] = np.cumprod(f[:0:-1])[::-1]
-    total = tail[0] * f[0]
     r = rows.astype(EXTENDED)
-    return gram * total + (r * tail[:, None]).T @ r
+    return gram + r.T @ r
 
 
 def refine(

@@ -2,11 +2,12 @@
 
 Layout (little-endian): magic ``b"LWSQ"``, format version (u8), flags (u8:
 bit 0 half-life set, bit 1 first time set, bit 2 last time set, bit 3 Gram
-matrix exact, bit 4 Gram sums free of rounding), dim (u16), n (u64), buffered rows (u16), eight float64 scalars
-(forgetting, half-life, ridge, prior weight, S1, S2, first time, last time),
+matrix exact, bit 4 Gram sums free of rounding), dim (u16), n (u64), buffered rows (u16), nine float64 scalars
+(forgetting, half-life, ridge, prior weight, S1, S2, first time, last time,
+scale of the factor, where the scale was last 1),
 then the ``(d+1)^2`` float64 entries of the augmented factor in column-major
 order, the extended Gram matrix as two float64 matrices (``hi``, ``lo`` with
-``G = hi + lo`` exactly), the buffered rows and their decays, and the
+``G = hi + lo`` exactly), the buffered (scaled) rows, and the
 per-column bit span of the folded values (two int64 vectors); last, a CRC-32
 of everything before it (u32), so corruption is detected on load. Raw IEEE 754 bytes: nothing is
 rounded, so a restored state continues exactly as one that never stopped.
@@ -28,7 +29,7 @@ __all__ = ["dump_state", "load_state", "FORMAT_VERSION"]
 
 MAGIC = b"LWSQ"
 FORMAT_VERSION = 1
-_HEAD = struct.Struct("<4sBBHQH8d")
+_HEAD = struct.Struct("<4sBBHQH10d")
 _CRC = struct.Struct("<I")
 
 
@@ -44,14 +45,14 @@ def dump_state(state) -> bytes:  # state: State (not imported: state.py imports 
         MAGIC, FORMAT_VERSION, flags, spec.dim, state.n, k,
         float(spec.forgetting), float(spec.half_life or 0.0), float(spec.ridge),
         state.prior_weight, state.weight_sum, state.weight_sq_sum,
-        float(state.first_time or 0.0), float(state.last_time or 0.0),
+        float(state.first_time or 0.0), float(state.last_time or 0.0), state._scale,
+        float(state._scale_origin),
     )
     payload = b"".join((
         head,
         np.asfortranarray(state._factor, dtype="<f8").tobytes(order="F"),
         split_pairs(state._gram).astype("<f8").tobytes(),
         state._pending[:k].astype("<f8").tobytes(),
-        state._pending_decay[:k].astype("<f8").tobytes(),
         state._span_lsb.astype("<i8").tobytes(),
         state._span_top.astype("<i8").tobytes(),
     ))
@@ -68,32 +69,30 @@ def load_state(data: bytes):
     if zlib.crc32(data) != crc:
         raise StateFormatError("state bytes are corrupt (checksum mismatch)")
     (magic, version, flags, dim, n, k, lam, half_life, ridge,
-     prior_weight, s1, s2, first_time, last_time) = _HEAD.unpack_from(data)
+     prior_weight, s1, s2, first_time, last_time, scale, origin) = _HEAD.unpack_from(data)
     if magic != MAGIC or version != FORMAT_VERSION:
         raise StateFormatError("not a leastwise state, or an unknown format version")
     m = dim + 1
     if not (1 <= dim and k < FOLD_ROWS):
         raise StateFormatError("state header out of range")
-    size = 3 * m * m + k * m + k + 2 * m
+    floats = 3 * m * m + k * m
+    size = floats + 2 * m
     if len(data) != _HEAD.size + 8 * size:
         raise StateFormatError("state bytes have the wrong length")
     body = np.frombuffer(data, dtype="<f8", offset=_HEAD.size)
     factor = body[: m * m].reshape((m, m), order="F")
     pairs = body[m * m: 3 * m * m].reshape((2, m, m))
     pending = body[3 * m * m: 3 * m * m + k * m].reshape((k, m))
-    decays = body[3 * m * m + k * m: 3 * m * m + k * m + k]
-    spans = np.frombuffer(data, dtype="<i8", offset=_HEAD.size + 8 * (3 * m * m + k * m + k)).reshape((2, m))
-    scalars = (lam, half_life, ridge, prior_weight, s1, s2, first_time, last_time)
-    if not (np.isfinite(body[: 3 * m * m + k * m + k]).all() and all(math.isfinite(v) for v in scalars)):
+    spans = np.frombuffer(data, dtype="<i8", offset=_HEAD.size + 8 * floats).reshape((2, m))
+    scalars = (lam, half_life, ridge, prior_weight, s1, s2, first_time, last_time, scale, origin)
+    if not (np.isfinite(body[:floats]).all() and all(math.isfinite(v) for v in scalars)):
         raise StateFormatError("state holds a non-finite number")
     if flags & ~0b11111:
         raise StateFormatError("state has unknown flag bits")
-    if not (0.0 <= prior_weight <= 1.0 and s1 >= 0.0 and s2 >= 0.0):
+    if not (0.0 <= prior_weight <= 1.0 and s1 >= 0.0 and s2 >= 0.0 and 0.0 < scale <= 1.0):
         raise StateFormatError("state weights out of range")
     if np.tril(factor, -1).any():
         raise StateFormatError("state factor is not upper triangular")
-    if k and not ((decays >= 0.0) & (decays <= 1.0)).all():
-        raise StateFormatError("state buffered decays out of range")
     try:
         spec = Spec(dim=dim, forgetting=lam, half_life=half_life if flags & 1 else None, ridge=ridge)
     except SpecError as exc:
@@ -102,7 +101,8 @@ def load_state(data: bytes):
     state._factor = np.array(factor, dtype=np.float64, order="F")
     state._gram = join_pairs(pairs)
     state._pending[:k] = pending
-    state._pending_decay[:k] = decays
+    state._scale = scale
+    state._scale_origin = origin
     state._pending_n = k
     state.gram_exact = bool(flags & 8)
     state._sums_exact = bool(flags & 16)

@@ -64,6 +64,7 @@ class Solution:
     rcond: float
     unidentified: NDArray[np.float64]  # (d - rank) x d orthonormal rows
     refined: bool = False  # True when extended-precision refinement gave the coefficients
+    scale: float = 1.0  # the factor's scale (true factor = scale * factor) this was solved with
     _svd: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]] | None = field(
         default=None, repr=False, compare=False
     )
@@ -111,20 +112,22 @@ class Excitation:
 
 def solve(
     factor: NDArray[np.float64], spec: Spec, prior_weight: float, weight_sum: float,
-    gram: NDArray[np.longdouble] | None = None, exact_sums: bool = False,
+    gram: NDArray[np.longdouble] | None = None, exact_sums: bool = False, scale: float = 1.0,
 ) -> Solution:
     """Solve the factored weighted ridge problem (see the module docstring for the formulas).
 
     With ``gram`` (the extended-precision Gram matrix) the factor's solution is
     refined when that is provably more accurate (:func:`.gram.refine`).
+    ``factor`` is in the state's scaled coordinates (true factor = ``scale * factor``):
+    coefficients do not depend on the scale; information, RSS and P do.
     """
     d = spec.dim
     R = factor[:d, :d]
     z = factor[:d, d]
-    rho = float(abs(factor[d, d]))
+    rho = float(abs(factor[d, d])) * scale
     colnorm = np.sqrt(np.einsum("ij,ij->j", R, R))
     rcond = 0.0
-    identifiable = bool(colnorm.min() > INFORMATION_FLOOR)
+    identifiable = bool(colnorm.min() * scale > INFORMATION_FLOOR)
     if identifiable:
         rcond, info = dtrcon(R / colnorm, norm="1", uplo="U", diag="N")
         rcond = float(rcond) if math.isfinite(rcond) else 0.0
@@ -143,12 +146,13 @@ def solve(
             identifiable = False
     if not identifiable:
         U, s, Vt = np.linalg.svd(R)
-        cutoff = max(s[0] * RCOND_TOL, INFORMATION_FLOOR) if s[0] > 0 else INFORMATION_FLOOR
+        floor = INFORMATION_FLOOR / scale
+        cutoff = max(s[0] * RCOND_TOL, floor) if s[0] > 0 else floor
         rank = min(int(np.count_nonzero(s > cutoff)), d - 1)
         coords = U[:, :rank].T @ z
         w = Vt[:rank].T @ (coords / s[:rank])
         leftover = U[:, rank:].T @ z
-        extra = float(np.dot(leftover, leftover))
+        extra = float(np.dot(leftover, leftover)) * scale * scale
         unidentified = Vt[rank:].copy()
         svd = (U, s, Vt)
     penalty = prior_weight * spec.ridge * float(np.dot(w, w)) if spec.ridge > 0.0 else 0.0
@@ -159,7 +163,7 @@ def solve(
         sigma = None
     return Solution(
         coefficients=w, identifiable=identifiable, rank=rank, rss=rss, dof=float(dof),
-        sigma=sigma, rcond=rcond, unidentified=unidentified, refined=refined, _svd=svd,
+        sigma=sigma, rcond=rcond, unidentified=unidentified, refined=refined, scale=scale, _svd=svd,
     )
 
 
@@ -176,6 +180,9 @@ def inverse_moment(factor: NDArray[np.float64], solution: Solution) -> NDArray[n
         r = solution.rank
         basis = Vt[:r] / s[:r, None]
         P = basis.T @ basis
+    c = solution.scale
+    if c != 1.0:
+        P = P / (c * c)
     if not np.isfinite(P).all():  # pragma: no cover - prevented by INFORMATION_FLOOR
         raise EngineError("inverse moment matrix outside the floating-point range")
     return 0.5 * (P + P.T)
@@ -186,6 +193,7 @@ def excitation(factor: NDArray[np.float64], solution: Solution, effective_n: flo
     d = solution.coefficients.shape[0]
     R = factor[:d, :d]
     _, s, Vt = np.linalg.svd(R)
+    s = s * solution.scale
     colnorm = np.sqrt(np.einsum("ij,ij->j", R, R))
     safe = np.where(colnorm > 0, colnorm, 1.0)
     s_scaled = np.linalg.svd(R / safe, compute_uv=False)
@@ -223,8 +231,11 @@ def predict(
             coords = rows @ Vt[:r].T / s[:r]
             q = np.einsum("ij,ij->i", coords, coords)
             null_part = np.linalg.norm(rows @ solution.unidentified.T, axis=1)
-            scale = np.linalg.norm(rows, axis=1)
-            bounded = null_part <= 1e-8 * np.maximum(scale, np.finfo(float).tiny)
+            size = np.linalg.norm(rows, axis=1)
+            bounded = null_part <= 1e-8 * np.maximum(size, np.finfo(float).tiny)
+        c = solution.scale
+        if c != 1.0:
+            q = q / (c * c)
     sigma = solution.sigma
     dof = solution.dof
     quantile = float(stats.t.ppf(0.5 + level / 2.0, dof)) if (sigma is not None and dof > 0) else None

@@ -44,6 +44,9 @@ LEVERAGE_LIMIT = 1e24
 _MAX_SQUARED_NORM = MAX_ABS_VALUE * MAX_ABS_VALUE
 _FLOAT64 = np.dtype(np.float64)
 
+#: The scale is renormalised (exactly, by a power of two) when it falls below this.
+_RENORMALISE_BELOW = 2.0**-128
+
 
 
 @dataclass(slots=True)
@@ -81,13 +84,19 @@ class State:
     __slots__ = (
         "spec", "_factor", "n", "prior_weight", "weight_sum", "weight_sq_sum",
         "first_time", "last_time", "_solution", "_sigma",
-        "_gram", "_pending", "_pending_decay", "_pending_n", "gram_exact",
+        "_gram", "_pending", "_pending_n", "gram_exact", "_scale", "_scale_origin",
         "_span_lsb", "_span_top", "_sums_exact",
     )
 
     def __init__(self, spec: Spec) -> None:
         self.spec = spec
+        # The true augmented factor is _scale * _factor: forgetting shrinks the scalar,
+        # so old rows are never re-rounded (only each new row is divided by it once).
         self._factor = new_factor(spec.dim, float(spec.ridge))
+        self._scale = 1.0
+        # Where the scale was last 1: an observation count (forgetting) or a time (half-life).
+        # Each scale is computed afresh from it with one pow(), so weights do not collect rounding.
+        self._scale_origin = 0.0
         #: observations absorbed since the prior
         self.n = 0
         #: b_0, the current weight of the ridge prior
@@ -103,15 +112,14 @@ class State:
         # Extended-precision Gram matrix (see gram.py) and rows not yet folded into it.
         self._gram = new_gram(spec.dim, float(spec.ridge))
         self._pending = np.zeros((FOLD_ROWS, spec.dim + 1), dtype=np.float64)
-        self._pending_decay = np.ones(FOLD_ROWS, dtype=np.float64)
         self._pending_n = 0
         #: False once a block backfill added rows to the Gram matrix in double precision
         self.gram_exact = True
-        # Bit span of the folded values, to tell when the Gram sums are free of rounding
-        # (never under forgetting or a ridge prior: their weights are rounded products).
+        # Bit span of the folded (scaled) rows, to tell when the Gram sums are free of
+        # rounding; not with a ridge prior, whose diagonal is not tracked.
         self._span_lsb = np.full(spec.dim + 1, _NO_LSB, dtype=np.int64)
         self._span_top = np.full(spec.dim + 1, _NO_EXP, dtype=np.int64)
-        self._sums_exact = not spec.forgets and spec.ridge == 0.0
+        self._sums_exact = spec.ridge == 0.0
 
     # ------------------------------------------------------------------ views
     @property
@@ -120,10 +128,10 @@ class State:
 
     @property
     def factor(self) -> np.ndarray:
-        """A read-only view of the augmented factor ``[[R, z], [0, rho]]``."""
-        view = self._factor.view()
-        view.flags.writeable = False
-        return view
+        """The augmented factor ``[[R, z], [0, rho]]`` (a read-only copy in true scale)."""
+        out = self._factor * self._scale
+        out.flags.writeable = False
+        return out
 
     def solution(self) -> Solution:
         """Coefficients, identifiability, sigma and the moment matrices (cached per state)."""
@@ -137,13 +145,15 @@ class State:
                     plsb, ptop = value_span(self._pending[:k])
                     lsb, top = np.minimum(lsb, plsb), np.maximum(top, ptop)
                 exact = sums_are_exact(lsb, top, self.n)
-            self._solution = solve(self._factor, self.spec, self.prior_weight, self.weight_sum, gram, exact)
+            self._solution = solve(
+                self._factor, self.spec, self.prior_weight, self.weight_sum, gram, exact, self._scale
+            )
         return self._solution
 
     def gram(self) -> np.ndarray:
         """The extended-precision augmented Gram matrix with the buffered rows folded in (a new array)."""
         k = self._pending_n
-        return fold(self._gram, self._pending[:k], self._pending_decay[:k])
+        return fold(self._gram, self._pending[:k])
 
     def coefficients(self) -> np.ndarray:
         """The exact minimiser ``w_n`` (minimum-norm while not identifiable)."""
@@ -212,38 +222,57 @@ class State:
     def absorb_block(self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None = None) -> None:
         """Absorb many observations at once (backfills): the same state as ``update_many``.
 
-        The weights of the whole block are applied to its rows directly
-        (``sqrt(b_i)`` scaling) and the rows are absorbed ``BLOCK_CHUNK`` at a
-        time by the blocked QR update, so the resulting state equals the
-        row-by-row one to rounding (not bit for bit). No per-row residuals.
+        Each row enters divided by the scale the state has after it (``c_i``),
+        as on the row-by-row path, and rows are absorbed up to ``BLOCK_CHUNK``
+        at a time by the blocked QR update, so the state equals the
+        row-by-row one to rounding (not bit for bit). No
+        per-row residuals. The block's Gram contribution is accumulated in
+        double precision for speed, which switches the extended-precision
+        refinement off for this state (``gram_exact``).
         """
         x, y, t = self._check_batch(rows, ys, times)
         k = x.shape[0]
         decays = np.asarray(self._decays_for(t, k), dtype=np.float64)
-        # b_i within the block, relative to its end: prod_{j>i} f_j, from the right.
+        # Weight bookkeeping over the whole block: b_i relative to its end is prod_{j>i} f_j.
         tail = np.ones(k, dtype=np.float64)
         if k > 1:
             tail[:-1] = np.cumprod(decays[:0:-1])[::-1]
         total_decay = float(tail[0] * decays[0])
-        scale = np.sqrt(tail)
-        self._gram = self.gram()
-        if self._sums_exact and self._pending_n:
-            self._merge_span(self._pending[: self._pending_n])
-        self._pending_n = 0
-        if total_decay != 1.0:
-            self._factor *= math.sqrt(total_decay)
-        self._gram *= EXTENDED(total_decay)
+        self._fold_all_pending()
         d = self.dim
-        for start in range(0, k, BLOCK_CHUNK):
+        lam, half_life = self.spec.forgetting, self.spec.half_life
+        if half_life is not None and self.n == 0:
+            self._scale_origin = float(t[0])  # the prior sits at the first observation's time
+        start = 0
+        while start < k:
             stop = min(start + BLOCK_CHUNK, k)
-            chunk = np.empty((stop - start, d + 1), dtype=np.float64, order="F")
-            chunk[:, :d] = x[start:stop]
-            chunk[:, d] = y[start:stop]
-            if total_decay != 1.0 or k > 1 and scale[start] != 1.0:
-                chunk *= scale[start:stop, None]
-            # Double-precision Gram for speed; the extended refinement is off from here on.
+            if decays[start] == 0.0:  # everything before this row weighs nothing any more
+                self._forget_all()
+                self._scale_origin = float(t[start])
+            # Each row enters divided by the scale after it, computed afresh (one pow each).
+            if half_life is not None:
+                scales = np.exp2(-(t[start:stop] - self._scale_origin) / (2.0 * half_life))
+            elif lam != 1.0:
+                counts = np.arange(self.n + start + 1, self.n + stop + 1, dtype=np.float64)
+                scales = np.power(lam, 0.5 * (counts - self._scale_origin))
+            else:
+                scales = np.ones(stop - start)
+            cut = np.flatnonzero((scales < _RENORMALISE_BELOW) | (decays[start:stop] == 0.0))
+            if cut.size and cut[0] == 0 and decays[start] != 0.0:
+                self._renormalise(float(scales[0]))
+                self._scale_origin = float(self.n + start + 1) if half_life is None else float(t[start])
+                continue
+            end = start + (int(cut[cut > 0][0]) if (cut > 0).any() else stop - start)
+            chunk = np.empty((end - start, d + 1), dtype=np.float64, order="F")
+            chunk[:, :d] = x[start:end]
+            chunk[:, d] = y[start:end]
+            scales = scales[: end - start]
+            if not (scales == 1.0).all():
+                chunk /= scales[:, None]
             self._gram += (chunk.T @ chunk).astype(EXTENDED)
             self._factor = absorb_rows(self._factor, chunk)
+            self._scale = float(scales[-1])
+            start = end
         self.gram_exact = False
         self.prior_weight *= total_decay
         self.weight_sum = total_decay * self.weight_sum + float(tail.sum())
@@ -268,12 +297,13 @@ class State:
         d = self.dim
         factor = self._factor
         sigma = self._sigma if self._sigma >= 0.0 else self._sigma_now()
-        # u solves R^T u = x: x^T (f A)^{-1} x = u.u / f and x^T w = u.z (w is unchanged by decay).
+        scale = self._scale_at(self.n + 1, t) if decay != 1.0 else self._scale  # decayed state = scale * factor
+        # u solves M^T u = x: x^T (f A)^{-1} x = u.u / scale^2 and x^T w = u.z (w is scale-free).
         u = dtrsv(factor[:d, :d], x, trans=1)
-        # decay == 0 (a gap of over ~1074 half-lives) forgets everything: no information along x.
         # dnrm2 scales internally: no overflow warning when x lies along an unexcited direction.
         norm_u = float(_nrm2(u))
-        leverage = norm_u * norm_u / decay if decay > 0.0 else math.inf
+        # scale == 0 (a gap of over ~1074 half-lives) forgets everything: no information along x.
+        leverage = (norm_u / scale) ** 2 if scale > 0.0 and norm_u / scale < 1e150 else math.inf
         recursive: float | None = None
         lev: float | None = None
         prediction = math.inf
@@ -283,7 +313,7 @@ class State:
         if not math.isfinite(prediction):
             # No information along x yet: predict with the minimum-norm solution.
             lev = None
-            previous = solve(factor, self.spec, self.prior_weight, self.weight_sum)
+            previous = solve(factor, self.spec, self.prior_weight, self.weight_sum, None, False, self._scale)
             with np.errstate(over="ignore", invalid="ignore"):
                 prediction = float(np.dot(previous.coefficients, x))
             if not math.isfinite(prediction):
@@ -293,21 +323,27 @@ class State:
             recursive = residual / math.sqrt(1.0 + lev)
         standardized = recursive / sigma if (recursive is not None and sigma) else None
         # Mutations from here on.
-        if decay != 1.0:
-            factor *= math.sqrt(decay)
+        if decay == 0.0 or scale == 0.0 or scale < _RENORMALISE_BELOW:
+            if decay == 0.0 or scale == 0.0:
+                self._forget_all()
+            else:
+                self._renormalise(scale)
+            scale = 1.0
+            self._scale_origin = float(self.n + 1) if self.spec.half_life is None else t
+        elif self.n == 0 and self.spec.half_life is not None:
+            self._scale_origin = t  # the prior sits at the first observation's time
+        self._scale = scale
         k = self._pending_n
         pending = self._pending
         pending[k, :d] = x
         pending[k, d] = y
+        if scale != 1.0:
+            pending[k] /= scale
         row = pending[k:k + 1]
-        self._pending_decay[k] = decay
         # overwrite_b=0: LAPACK works on a copy, the buffered row stays for the Gram fold.
-        self._factor = _tpqrt(0, _nb(d + 1), factor, row, overwrite_a=1, overwrite_b=0)[0]
+        self._factor = _tpqrt(0, _nb(d + 1), self._factor, row, overwrite_a=1, overwrite_b=0)[0]
         if k + 1 == FOLD_ROWS:
-            self._gram = fold(self._gram, self._pending, self._pending_decay)
-            if self._sums_exact:
-                self._merge_span(self._pending)
-            self._pending_n = 0
+            self._fold_pending()
         else:
             self._pending_n = k + 1
         self.n += 1
@@ -321,6 +357,48 @@ class State:
         self._solution = None
         self._sigma = -1.0
         return Step(prediction, residual, lev, recursive, standardized, decay)
+
+    def _fold_pending(self) -> None:
+        """The buffer is full: fold all FOLD_ROWS rows into the Gram matrix."""
+        self._gram = fold(self._gram, self._pending)
+        if self._sums_exact:
+            self._merge_span(self._pending)
+        self._pending_n = 0
+
+    def _renormalise(self, scale: float) -> None:
+        """Fold ``scale`` into the factor and the Gram matrix (one rounding) and restart the scale at 1.
+
+        Happens when the scale drops below 2^-128, e.g. every ~29,000 steps at lambda = 0.99.
+        """
+        self._fold_all_pending()
+        self._factor *= scale
+        self._gram *= EXTENDED(scale) * EXTENDED(scale)
+        self._sums_exact = False
+        self._scale = 1.0
+
+    def _fold_all_pending(self) -> None:
+        k = self._pending_n
+        if k == 0:
+            return
+        self._gram = fold(self._gram, self._pending[:k])
+        if self._sums_exact:
+            self._merge_span(self._pending[:k])
+        self._pending_n = 0
+
+    def _forget_all(self) -> None:
+        """A decay of 0: every past observation and the prior weigh nothing any more."""
+        self._factor[:] = 0.0
+        self._gram[:] = 0
+        self._pending_n = 0
+        self._scale = 1.0
+
+    def _scale_at(self, count: float, t: float | None) -> float:
+        """Scale of the factor once ``count`` observations (the last at time ``t``) are in: one pow()."""
+        if self.spec.half_life is None:
+            return self.spec.forgetting ** (0.5 * (count - self._scale_origin))
+        if self.n == 0:
+            return 1.0
+        return 2.0 ** (-(t - self._scale_origin) / (2.0 * self.spec.half_life))
 
     def _merge_span(self, rows: np.ndarray) -> None:
         lsb, top = value_span(rows)
@@ -339,7 +417,7 @@ class State:
         dof = self.weight_sum - d
         value = 0.0
         if dof > 0.0:
-            rho = float(self._factor[d, d])
+            rho = float(self._factor[d, d]) * self._scale
             rss = rho * rho
             if self.spec.ridge > 0.0 and self.prior_weight > 0.0:
                 w = dtrsv(self._factor[:d, :d], self._factor[:d, d])

@@ -33,13 +33,44 @@ def is_loopback(host: str) -> bool:
     return bool(infos) and all(ipaddress.ip_address(i[4][0].split("%")[0]).is_loopback for i in infos)
 
 
-def check_host(host: str) -> None:
-    if not is_loopback(host):
-        raise LoopbackOnly(
-            f"refusing to listen on {host!r}: without access tokens leastwise serves loopback only "
-            "(127.0.0.1, ::1 or localhost). Put a reverse proxy with authentication in front, "
-            "or wait for the access-control release."
-        )
+def active_tokens(database: str) -> int:
+    """Unrevoked access tokens in ``database``; 0 for a database (or SQLite file) that does not exist yet."""
+    from pathlib import Path
+
+    from sqlalchemy.engine import make_url
+
+    from leastwise.store import Store
+    from leastwise.store.tokens import count_active
+
+    url = make_url(database)
+    if url.get_backend_name() == "sqlite":
+        path = url.database or ""
+        if not path or path == ":memory:" or (not path.startswith("file:") and not Path(path).expanduser().exists()):
+            return 0  # never create a database just to find it empty
+    store = Store.open(database, pool_size=1, run_migrations=False)
+    try:
+        with store.read() as conn:
+            return count_active(conn)
+    except Exception:  # noqa: BLE001 - no tokens table yet (an older schema): no tokens
+        return 0
+    finally:
+        store.close()
+
+
+def check_host(host: str, database: str | None = None) -> None:
+    """Refuse a non-loopback address unless ``database`` holds an unrevoked access token."""
+    if is_loopback(host):
+        return
+    if database is not None and active_tokens(database) > 0:
+        return
+    where = f" --database {mask_url(database)}" if database else ""
+    raise LoopbackOnly(
+        f"refusing to listen on {host!r}: no access token exists, and without tokens leastwise serves "
+        "loopback only (127.0.0.1, ::1 or localhost). Create an admin token first with\n"
+        f"    leastwise token create{where} --scope admin --label operator\n"
+        "(it is printed once), give gateways and dashboards their own write/read tokens, then start again. "
+        "Or keep loopback and put a reverse proxy with TLS and authentication in front (deploy/README.md)."
+    )
 
 
 def run(settings: Settings) -> None:
@@ -48,20 +79,69 @@ def run(settings: Settings) -> None:
 
     from leastwise.api import create_app
 
-    check_host(settings.host)
+    check_host(settings.host, settings.database)
     setup_logging(settings.log_level)
     app = create_app(settings)
     log.info("serving", extra={"host": settings.host, "port": settings.port, "database": mask_url(settings.database),
-                               "checkpoint_every": settings.checkpoint_every, "compact_log": settings.compact_log})
+                               "checkpoint_every": settings.checkpoint_every, "compact_log": settings.compact_log,
+                               "group_commit": settings.group_commit, "threads": settings.threads})
+    loop, http = fast_loop_and_parser()
     config = uvicorn.Config(
-        app,
+        _ThreadLimit(app, settings.threads),
         host=settings.host,
         port=settings.port,
         access_log=False,
         log_config=None,
-        loop="auto",
-        http="auto",
+        loop=loop,
+        http=http,
+        backlog=2048,
         timeout_graceful_shutdown=5,
         server_header=False,
+        date_header=False,
+        # hardening and TLS (issue 6; see deploy/README.md)
+        limit_concurrency=settings.limit_concurrency or None,
+        timeout_keep_alive=settings.timeout_keep_alive,
+        h11_max_incomplete_event_size=16 * 1024,
+        ssl_certfile=settings.tls_cert or None,
+        ssl_keyfile=settings.tls_key or None,
     )
     uvicorn.Server(config).run()
+
+
+def fast_loop_and_parser() -> tuple[str, str]:
+    """uvloop and httptools when installed (they are dependencies on Linux), else uvicorn's pure-Python fallbacks.
+
+    One process serves a database: the registry keeps each model in memory and
+    one writer thread groups the commits, so more worker processes would only
+    fight over the same rows (see README, Performance).
+    """
+    import importlib.util
+
+    loop = "uvloop" if importlib.util.find_spec("uvloop") is not None else "asyncio"
+    http = "httptools" if importlib.util.find_spec("httptools") is not None else "h11"
+    return loop, http
+
+
+class _ThreadLimit:
+    """Sets the size of the worker-thread pool for blocking work once the event loop runs.
+
+    Each observation request waits for its group commit in a worker thread;
+    anyio's default of 40 would cap the requests in flight below the
+    connections a gateway fleet keeps open.
+    """
+
+    def __init__(self, app, threads: int) -> None:  # noqa: ANN001
+        self.app = app
+        self.threads = threads
+        self._set = False
+
+    def __getattr__(self, name: str):  # noqa: ANN204 - state, routes etc. of the wrapped app
+        return getattr(self.app, name)
+
+    async def __call__(self, scope, receive, send) -> None:  # noqa: ANN001
+        if not self._set:
+            import anyio.to_thread
+
+            anyio.to_thread.current_default_thread_limiter().total_tokens = self.threads
+            self._set = True
+        await self.app(scope, receive, send)

@@ -10,7 +10,14 @@
 | max_body_bytes | ``LEASTWISE_MAX_BODY_BYTES`` | ``1048576`` (1 MiB) |
 | max_batch | ``LEASTWISE_MAX_BATCH`` | ``10000`` observations or prediction rows per request |
 | log_level | ``LEASTWISE_LOG_LEVEL`` | ``info`` |
+| tls_cert, tls_key | ``LEASTWISE_TLS_CERT``, ``LEASTWISE_TLS_KEY`` | none: plain HTTP; both set: HTTPS (PEM files, handed to uvicorn) |
+| limit_concurrency | ``LEASTWISE_LIMIT_CONCURRENCY`` | ``4096`` connections or requests in flight; beyond: 503 (``0``: no limit) |
+| timeout_keep_alive | ``LEASTWISE_TIMEOUT_KEEP_ALIVE`` | ``5`` seconds an idle keep-alive connection stays open |
+| body_timeout | ``LEASTWISE_BODY_TIMEOUT`` | ``30`` seconds to receive a whole request body; slower: 408 |
 | pool_size | ``LEASTWISE_POOL_SIZE`` | ``8`` database connections kept open (plus overflow) |
+| group_commit | ``LEASTWISE_GROUP_COMMIT`` | ``true``: observation requests that arrive while a commit is in flight share the next transaction |
+| max_group | ``LEASTWISE_MAX_GROUP`` | ``256`` requests at most per group transaction |
+| threads | ``LEASTWISE_THREADS`` | ``64`` worker threads for blocking work (each waiting request holds one) |
 """
 
 from __future__ import annotations
@@ -41,7 +48,15 @@ class Settings:
     max_body_bytes: int = LIMIT_BODY_BYTES
     max_batch: int = LIMIT_BATCH
     log_level: str = "info"
+    tls_cert: str = ""
+    tls_key: str = ""
+    limit_concurrency: int = 4096
+    timeout_keep_alive: int = 5
+    body_timeout: int = 30
     pool_size: int = 8
+    group_commit: bool = True
+    max_group: int = 256
+    threads: int = 64
 
     def __post_init__(self) -> None:
         if not 1 <= self.port <= 65535:
@@ -54,6 +69,14 @@ class Settings:
             raise ValueError("max_batch must be >= 1")
         if self.pool_size < 1:
             raise ValueError("pool_size must be >= 1")
+        if bool(self.tls_cert) != bool(self.tls_key):
+            raise ValueError("TLS needs both a certificate (--tls-cert) and its key (--tls-key)")
+        if self.limit_concurrency < 0 or self.timeout_keep_alive < 1 or self.body_timeout < 1:
+            raise ValueError("limit_concurrency must be >= 0, timeout_keep_alive and body_timeout >= 1")
+        if self.max_group < 1:
+            raise ValueError("max_group must be >= 1")
+        if self.threads < 1:
+            raise ValueError("threads must be >= 1")
 
     @classmethod
     def from_env(cls, environ: dict[str, str] | None = None, **overrides: Any) -> "Settings":

@@ -1,11 +1,22 @@
-"""Benchmark of the HTTP service (not a test): ``python tests/bench/service.py [--duration 5]``.
+"""Benchmark of the HTTP service (not a test): ``python tests/bench/service.py [--duration 5] [--postgres]``.
 
 Starts a real ``leastwise serve`` (SQLite in a temporary folder, WAL,
-synchronous=FULL) and, as the framework's ceiling, a bare FastAPI endpoint on
-the same uvicorn settings that only reads and parses the same JSON body. wrk
-(another process) posts single observations and batches of 64 at 1, 16 and 64
-connections; a Lua script gives every observation its own idempotency key.
-Prints one JSON line per run plus ratio lines.
+synchronous=FULL: every 2xx is on disk) and, as the framework's ceiling, a bare
+FastAPI endpoint on the same uvicorn settings (uvloop, httptools, one process)
+that only reads and parses the same JSON body. wrk, in its own process, drives
+both; a Lua script gives every observation its own idempotency key and prints
+throughput, p50/p99 latency and errors. Every figure is printed absolute and
+as a ratio to the ceiling measured in the same run, with the machine's core
+count. ``--postgres`` repeats the single-POST runs on a throwaway PostgreSQL
+cluster (tests/support/postgres.py).
+
+Runs (targets from issue 7):
+
+- ``single``  d = 8, one observation per POST, 16 and 64 connections
+- ``batch64`` d = 8, 64 observations per POST, 16 connections (observations/s)
+- ``uniform`` d = 8, single POSTs spread uniformly over 10,000 models
+- ``get``     dashboard poll ``GET /v1/models/{name}``, plain and with ``If-None-Match``
+- ``d64``     d = 64, single POST, 16 connections
 """
 
 from __future__ import annotations
@@ -13,6 +24,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import platform
 import re
 import shutil
 import subprocess
@@ -36,13 +48,30 @@ end
 function init(args)
   batch = tonumber(args[1]) or 1
   run = args[2] or "r"
+  dim = tonumber(args[3]) or 8
+  models = tonumber(args[4]) or 0      -- 0: the URL's path; n: /v1/models/<prefix><i> with i uniform in 0..n-1
+  prefix = args[5] or "u"
+  method = args[6] or "POST"
+  etag = args[7] or ""
+  math.randomseed(os.time() + tid * 7919)
 end
 local function one(i)
-  return string.format('{"x":[%d.5,%d.25],"y":%d.125,"key":"%s-%s-%d-%d"}',
-    (counter + i) % 97, (counter * 7 + i) % 89, (counter + i) % 13, run, tostring(tid), counter, i)
+  local xs = {}
+  for j = 1, dim do xs[j] = string.format("%.4f", ((counter * 31 + i * 17 + j * 13) % 1000) / 97.0 - 5.0) end
+  return string.format('{"x":[%s],"y":%.4f,"key":"%s-%s-%d-%d"}',
+    table.concat(xs, ","), ((counter + i) % 113) / 7.0, run, tostring(tid), counter, i)
 end
 function request()
   counter = counter + 1
+  local path = wrk.path
+  if models > 0 then
+    path = "/v1/models/" .. prefix .. tostring(math.random(0, models - 1)) .. "/observations"
+  end
+  if method == "GET" then
+    local headers = {}
+    if etag ~= "" then headers["If-None-Match"] = etag end
+    return wrk.format("GET", path, headers, nil)
+  end
   local body
   if batch == 1 then
     body = one(0)
@@ -51,11 +80,12 @@ function request()
     for i = 1, batch do parts[i] = one(i) end
     body = '{"observations":[' .. table.concat(parts, ",") .. ']}'
   end
-  return wrk.format("POST", wrk.path, {["Content-Type"] = "application/json"}, body)
+  return wrk.format("POST", path, {["Content-Type"] = "application/json"}, body)
 end
 function done(summary, latency, requests)
-  io.write(string.format("RESULT %d %d %d %d %d\n", summary.requests, summary.duration,
-    latency:percentile(50), latency:percentile(99), summary.errors.status + summary.errors.connect + summary.errors.timeout))
+  io.write(string.format("RESULT %d %d %d %d %d %d\n", summary.requests, summary.duration,
+    latency:percentile(50), latency:percentile(99), summary.errors.status + summary.errors.connect + summary.errors.timeout
+    + summary.errors.read + summary.errors.write, latency.max))
 end
 """
 
@@ -64,72 +94,199 @@ import orjson, uvicorn
 from fastapi import FastAPI, Request
 from starlette.responses import Response
 app = FastAPI()
+STATE = orjson.dumps({"name": "m", "config": {"features": ["f%d" % i for i in range(8)], "intercept": False,
+    "forgetting": 1.0, "half_life": None, "ridge": 0.0}, "version": 123, "created": "2026-01-01T00:00:00Z",
+    "n": 122, "effective_n": 122.0, "identifiable": True, "rank": 8,
+    "coefficients": {"f%d" % i: 0.123456789 * i for i in range(8)}, "sigma": 0.5, "rss": 12.5, "dof": 114.0,
+    "unidentified_directions": [], "last_time": None, "drift": {"status": "ok", "reasons": [], "detectors": True}})
 @app.post("/v1/models/{name}/observations")
 async def parse(name: str, request: Request) -> Response:
     body = orjson.loads(await request.body())
     n = len(body["observations"]) if "observations" in body else 1
     return Response(orjson.dumps({"parsed": n}), media_type="application/json")
+@app.get("/v1/models/{name}")
+async def state(name: str, request: Request) -> Response:
+    return Response(STATE, media_type="application/json", headers={"ETag": '"1.2"', "Cache-Control": "no-cache"})
 @app.get("/healthz")
 async def healthz():
     return {"status": "ok"}
 if __name__ == "__main__":
     import sys
-    uvicorn.run(app, host="127.0.0.1", port=int(sys.argv[1]), access_log=False, log_level="warning", loop="auto", http="auto")
+    from leastwise.serve import fast_loop_and_parser
+    loop, http = fast_loop_and_parser()
+    uvicorn.run(app, host="127.0.0.1", port=int(sys.argv[1]), access_log=False, log_level="warning", loop=loop,
+                http=http, backlog=2048, server_header=False, date_header=False)
 '''
 
 
-def wrk(url: str, script: Path, connections: int, duration: float, batch: int, run: str) -> dict:
-    threads = max(1, min(connections, 2))
-    cmd = ["wrk", "-t", str(threads), "-c", str(connections), "-d", f"{max(1, int(round(duration)))}s", "--timeout", "10s",
-           "-s", str(script), url, "--", str(batch), run]
+def wrk(url: str, script: Path, connections: int, duration: float, *lua_args: object) -> dict:
+    threads = 2 if connections >= 2 else 1
+    cmd = ["wrk", "-t", str(threads), "-c", str(connections), "-d", f"{max(1, int(round(duration)))}s",
+           "--timeout", "10s", "-s", str(script), url, "--", *map(str, lua_args)]
     out = subprocess.run(cmd, capture_output=True, text=True, check=True).stdout
-    m = re.search(r"RESULT (\d+) (\d+) (\d+) (\d+) (\d+)", out)
+    m = re.search(r"RESULT (\d+) (\d+) (\d+) (\d+) (\d+) (\d+)", out)
     assert m, out
-    requests, micros, p50, p99, errors = map(int, m.groups())
+    requests, micros, p50, p99, errors, worst = map(int, m.groups())
+    non2xx = re.search(r"Non-2xx or 3xx responses: (\d+)", out)
     rps = requests / (micros / 1e6)
-    return {"requests": requests, "rps": round(rps, 1), "observations_per_s": round(rps * batch, 1),
-            "p50_ms": round(p50 / 1000, 3), "p99_ms": round(p99 / 1000, 3), "errors": errors}
+    return {"requests": requests, "rps": round(rps, 1), "p50_ms": round(p50 / 1000, 3), "p99_ms": round(p99 / 1000, 3),
+            "max_ms": round(worst / 1000, 1), "errors": errors + (int(non2xx.group(1)) if non2xx else 0)}
+
+
+def features(d: int) -> dict:
+    return {"features": [f"f{i}" for i in range(d)], "intercept": False}
+
+
+def create_many(url: str, prefix: str, count: int, d: int) -> None:
+    """``count`` models created in one transaction (10,000 PUTs would take one fsync each)."""
+    from leastwise.engine import State
+    from leastwise.models.config import ModelConfig
+    from leastwise.models.drift import ResidualMonitor
+    from leastwise.store import CheckpointRow, Store
+    from leastwise.store import queries as q
+
+    config = ModelConfig.parse(features(d))
+    cp = CheckpointRow(1, 0, State(config.spec()).to_bytes(), ResidualMonitor(config.forgetting).to_bytes())
+    store = Store.open(url)
+    try:
+        with store.write() as conn:
+            now = time.time()
+            for i in range(count):
+                q.insert_model(conn, f"{prefix}{i}", config.to_json(), now, cp)
+    finally:
+        store.close()
+
+
+class Bench:
+    def __init__(self, args: argparse.Namespace, tmp: Path) -> None:
+        self.args, self.tmp = args, tmp
+        self.script = tmp / "post.lua"
+        self.script.write_text(LUA)
+        self.lines: list[dict] = []
+        self.ceilings: dict[tuple, dict] = {}
+
+    def emit(self, line: dict) -> None:
+        self.lines.append(line)
+        print(json.dumps(line), flush=True)
+
+    def ceiling(self, bare: LeastwiseServer, kind: str, conns: int, batch: int, d: int) -> dict:
+        key = (kind, conns, batch, d)
+        if key not in self.ceilings:
+            if kind == "get":
+                self.ceilings[key] = wrk(f"{bare.url}/v1/models/m", self.script, conns, self.args.duration,
+                                         1, "bare", d, 0, "u", "GET")
+            else:
+                self.ceilings[key] = wrk(f"{bare.url}/v1/models/m/observations", self.script, conns,
+                                         self.args.duration, batch, f"bare{len(self.ceilings)}", d)
+        return self.ceilings[key]
+
+    def run(self, server: LeastwiseServer, bare: LeastwiseServer, database: str, bench: str, conns: int, *,
+            batch: int = 1, d: int = 8, name: str | None = None, models: int = 0, method: str = "POST",
+            etag: str = "", check_n: bool = True) -> dict:
+        import httpx
+
+        tag = f"{bench}-{database}-c{conns}-b{batch}-d{d}"
+        path = f"/v1/models/{name or tag}" + ("/observations" if method == "POST" else "")
+        if name is None:
+            with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
+                http.put(f"/v1/models/{tag}", json=features(d)).raise_for_status()
+                # past the start-up phase first: while fewer than d observations determine the
+                # coefficients, every update and answer takes the engine's minimum-norm (SVD) path
+                warm = [{"x": [((i * 7 + j * 3) % 11) * 0.5 + (i == j) for j in range(d)], "y": i * 0.1}
+                        for i in range(2 * d + 8)]
+                http.post(f"/v1/models/{tag}/observations", json={"observations": warm}).raise_for_status()
+        svc = wrk(f"{server.url}{path}", self.script, conns, self.args.duration, batch, tag, d, models, "u",
+                  method, etag)
+        ceil = self.ceiling(bare, "get" if method == "GET" else "post", conns, batch, d)
+        line = {"bench": bench, "database": database, "connections": conns, "batch": batch, "d": d, **svc,
+                "observations_per_s": round(svc["rps"] * batch, 1) if method == "POST" else None,
+                "ceiling_rps": ceil["rps"], "ceiling_p99_ms": ceil["p99_ms"],
+                "ratio": round(svc["rps"] / ceil["rps"], 3), "cpu_count": os.cpu_count()}
+        if method == "POST" and check_n and not models:
+            with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
+                n = http.get(f"/v1/models/{name or tag}").json()["n"]
+            line["applied_n"] = n - (2 * d + 8)  # every key is new: >= requests * batch (2xx means applied)
+        self.emit(line)
+        return line
+
+
+def serve(database: str, tmp: Path, extra: dict | None = None) -> LeastwiseServer:
+    env = {"LEASTWISE_LOG_LEVEL": "warning", **(extra or {})}
+    return LeastwiseServer(database, workdir=tmp, env=env, startup_timeout=120)
 
 
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--duration", type=float, default=5.0)
-    ap.add_argument("--connections", default="1,16,64")
+    ap.add_argument("--only", default="single,batch64,uniform,get,d64", help="comma-separated runs")
+    ap.add_argument("--models", type=int, default=10_000)
+    ap.add_argument("--postgres", action="store_true", help="also the single-POST runs on PostgreSQL")
     args = ap.parse_args()
     if shutil.which("wrk") is None:
         sys.exit("wrk is not installed (apt-get install -y wrk)")
+    only = set(args.only.split(","))
     tmp = Path(tempfile.mkdtemp(prefix="leastwise-bench-"))
-    script = tmp / "post.lua"
-    script.write_text(LUA)
-    bare_py = tmp / "bare.py"
-    bare_py.write_text(BARE)
-    server = LeastwiseServer(f"sqlite:///{tmp / 'bench.sqlite3'}", workdir=tmp, env={"LEASTWISE_LOG_LEVEL": "warning"})
-    bare = LeastwiseServer("unused", workdir=tmp / "bare", command=[sys.executable, str(bare_py), "{port}"])
-    server.start()
-    bare.start()
+    (tmp / "bare.py").write_text(BARE)
+    bench = Bench(args, tmp)
+    sqlite_url = f"sqlite:///{tmp / 'bench.sqlite3'}"
+    if "uniform" in only:
+        create_many(sqlite_url, "u", args.models, 8)
+    server = serve(sqlite_url, tmp)
+    bare = LeastwiseServer("unused", workdir=tmp / "bare", command=[sys.executable, str(tmp / "bare.py"), "{port}"])
+    pg = None
     try:
-        import httpx
+        server.start()
+        bare.start()
+        if "single" in only:
+            for conns in (16, 64):
+                bench.run(server, bare, "sqlite", "single", conns)
+        if "batch64" in only:
+            bench.run(server, bare, "sqlite", "batch64", 16, batch=64)
+        if "uniform" in only:
+            # warm-up: every model loaded once (checkpoint read) before the measured run
+            wrk(f"{server.url}/", bench.script, 16, max(3.0, args.duration), 1, "warm", 8, args.models, "u")
+            for conns in (16, 64):
+                bench.run(server, bare, "sqlite", "uniform", conns, name="u0", models=args.models)
+        if "get" in only:
+            import httpx
 
-        runs = []
-        with httpx.Client(base_url=server.url, trust_env=False) as http:
-            for batch in (1, 64):
-                for conns in map(int, args.connections.split(",")):
-                    name = f"bench-b{batch}-c{conns}"
-                    http.put(f"/v1/models/{name}", json={"features": ["load_kw", "condenser_c"]}).raise_for_status()
-                    svc = wrk(f"{server.url}/v1/models/{name}/observations", script, conns, args.duration, batch, name)
-                    ceil = wrk(f"{bare.url}/v1/models/{name}/observations", script, conns, args.duration, batch, name)
-                    n = http.get(f"/v1/models/{name}").json()["n"]
-                    line = {"bench": "service_post", "database": "sqlite", "batch": batch, "connections": conns,
-                            **svc, "applied_n": n, "bare_fastapi_rps": ceil["rps"], "bare_p50_ms": ceil["p50_ms"],
-                            "bare_p99_ms": ceil["p99_ms"], "ratio_to_bare": round(svc["rps"] / ceil["rps"], 3)}
-                    runs.append(line)
-                    print(json.dumps(line), flush=True)
-        print(json.dumps({"bench": "summary", "cpu_count": os.cpu_count(), "duration_s": args.duration,
-                          "best_single_rps": max(r["rps"] for r in runs if r["batch"] == 1),
-                          "best_batch64_obs_per_s": max(r["observations_per_s"] for r in runs if r["batch"] == 64)}))
+            name = "get-model"
+            with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
+                http.put(f"/v1/models/{name}", json=features(8)).raise_for_status()
+                for i in range(200):
+                    http.post(f"/v1/models/{name}/observations",
+                              json={"x": [((i * 7 + j * 3) % 11) * 0.5 for j in range(8)], "y": i * 0.1})
+                etag = http.get(f"/v1/models/{name}").headers["etag"]
+            bench.run(server, bare, "sqlite", "get", 16, name=name, method="GET")
+            bench.run(server, bare, "sqlite", "get_if_none_match", 16, name=name, method="GET", etag=etag)
+        if "d64" in only:
+            bench.run(server, bare, "sqlite", "d64", 16, d=64)
+        server.terminate()
+        if args.postgres:
+            from tests.support.postgres import PostgresServer, PostgresUnavailable, ThrowawayCluster, find_pg_bindir
+
+            bindir = find_pg_bindir()
+            if bindir is None:
+                raise PostgresUnavailable("no PostgreSQL binaries")
+            pg = ThrowawayCluster(bindir)
+            pg.start()
+            admin = PostgresServer(pg.url, pg)
+            admin.check()
+            url = admin.create_database("lw_bench")
+            pserver = serve(url, tmp / "pg")
+            pserver.start()
+            try:
+                for conns in (16, 64):
+                    bench.run(pserver, bare, "postgresql", "single", conns)
+            finally:
+                pserver.terminate()
+        print(json.dumps({"bench": "machine", "cpu_count": os.cpu_count(), "python": platform.python_version(),
+                          "platform": platform.platform(), "duration_s": args.duration}), flush=True)
     finally:
         server.terminate()
         bare.terminate()
+        if pg is not None:
+            pg.stop()
         shutil.rmtree(tmp, ignore_errors=True)
 
 

@@ -7,7 +7,6 @@ import time
 
 import httpx
 import numpy as np
-import pytest
 
 from .helpers import coefficients
 

@@ -48,7 +48,7 @@ def test_restart_is_bit_identical(sqlite_url, kind):
     assert again.live_state("m").to_bytes() == live
     assert again._entries["m"].live.monitor.to_bytes() == drift
     # and it keeps going identically
-    rng1, rng2 = np.random.default_rng(5), np.random.default_rng(5)
+    rng1 = np.random.default_rng(5)
     _post(again, "m", rng1, 9, t, 3)
     again.store.close()
     third = _registry(sqlite_url, checkpoint_every=1000)

@@ -299,3 +299,14 @@ def reap_all() -> None:
 
 
 atexit.register(reap_all)
+
+
+def module_server(tmp_path_factory, label: str):
+    """Generator for a module-scoped fixture: one ``leastwise serve`` on a fresh SQLite file."""
+    workdir = tmp_path_factory.mktemp(label)
+    server = LeastwiseServer(f"sqlite:///{workdir / 'leastwise.sqlite3'}", workdir=workdir)
+    server.start()
+    try:
+        yield server
+    finally:
+        server.terminate(timeout=5)

@@ -9,6 +9,7 @@ from leastwise.models import Registry
 from leastwise.settings import Settings
 from leastwise.store import Store
 
+from .auth import install_access
 from .middleware import RequestLog
 from .problems import install_handlers
 from .routes import router
@@ -20,7 +21,7 @@ def build_registry(settings: Settings) -> Registry:
     """Open the database (running migrations) and make the registry."""
     store = Store.open(settings.database, pool_size=settings.pool_size)
     return Registry(store, checkpoint_every=settings.checkpoint_every, compact_log=settings.compact_log,
-                    max_batch=settings.max_batch)
+                    max_batch=settings.max_batch, group_commit=settings.group_commit, max_group=settings.max_group)
 
 
 def create_app(settings: Settings | None = None, registry: Registry | None = None) -> FastAPI:
@@ -32,5 +33,6 @@ def create_app(settings: Settings | None = None, registry: Registry | None = Non
     app.state.registry = registry
     install_handlers(app)
     app.include_router(router)
+    install_access(app, settings, registry.store)  # tokens, scopes, audit (api/auth.py)
     app.add_middleware(RequestLog)
     return app

@@ -11,6 +11,7 @@ from starlette.responses import Response
 
 from leastwise.models import FieldError, Registry
 
+from .auth import may_see
 from .body import MISSING, read_json
 from .problems import Problem
 
@@ -63,6 +64,7 @@ async def healthz() -> Response:
 @router.get("/v1/models")
 async def list_models(request: Request) -> Response:
     models = await run_in_threadpool(_registry(request).list)
+    models = [m for m in models if may_see(request, m["name"])]  # a token's model pattern (api/auth.py)
     return json_response({"models": models})
 
 
@@ -107,7 +109,45 @@ async def post_predict(name: str, request: Request) -> Response:
 
 @router.get("/v1/models/{name}/drift")
 async def get_drift(name: str, request: Request) -> Response:
-    return json_response(await run_in_threadpool(_registry(request).drift, name))
+    history = _flag(request.query_params.get("history"), "history")
+    return json_response(await run_in_threadpool(_registry(request).drift, name, history))
+
+
+def _flag(raw: str | None, name: str) -> bool:
+    if raw is None or raw in ("0", "false", ""):
+        return False
+    if raw in ("1", "true"):
+        return True
+    raise Problem(422, "invalid-input", f"{name} must be true or false", [FieldError(name, "must be true or false")])
+
+
+def _count(raw: str | None, name: str, default: int, top: int) -> int:
+    if raw is None:
+        return default
+    if not raw.isdigit() or len(raw) > 18 or int(raw) > top:
+        raise Problem(422, "invalid-input", f"{name} must be an integer from 0 to {top}",
+                      [FieldError(name, f"must be an integer from 0 to {top}")])
+    return int(raw)
+
+
+@router.get("/v1/models/{name}/drift/events")
+async def get_drift_events(name: str, request: Request) -> Response:
+    qp = request.query_params
+    after = _count(qp.get("after"), "after", 0, 2**62)
+    limit = max(1, _count(qp.get("limit"), "limit", 100, 1000))
+    status = qp.get("status")
+    if status is not None and status not in ("ok", "watch", "alarm"):
+        raise Problem(422, "invalid-input", "status must be ok, watch or alarm",
+                      [FieldError("status", "must be ok, watch or alarm")])
+    out = await run_in_threadpool(_registry(request).drift_events, name, after, limit, status)
+    return json_response(out)
+
+
+@router.post("/v1/models/{name}/drift/reference")
+async def post_drift_reference(name: str, request: Request) -> Response:
+    body = await read_json(request, _limit(request), optional=True)
+    out = await run_in_threadpool(_registry(request).move_reference, name, None if body is MISSING else body)
+    return json_response(out)
 
 
 @router.get("/v1/models/{name}/covariance")

@@ -417,6 +417,23 @@ class DriftState:
         """Tabular CUSUM statistics ``(C+, C-)`` in sigma units."""
         return self._cp, self._cn
 
+    def signature(self) -> int:
+        """Cheap fingerprint of :meth:`status`: the same value means the same status and reasons.
+
+        O(1), no allocation: lets a caller skip building the status after every
+        observation and only do so when the fingerprint changes.
+        """
+        code = self._latch_code
+        if self._m > self._warm:
+            cp, cn = self._cp, self._cn
+            code |= ((cp > self._hw) + (cp > self._ha)) << 3
+            code |= ((cn > self._hw) + (cn > self._ha)) << 5
+            code |= ((self._bde_w_since >= 0) + (self._bde_a_since >= 0)) << 7
+            code |= (self._bias_since >= 0) << 9
+            code |= ((self._scale_w_since >= 0) + (self._scale_a_since >= 0)) << 10
+            code |= (self._bias > 0.0) << 12 | 1 << 13
+        return code
+
     def status(self) -> DriftStatus:
         """Current status and its reasons (alarms first)."""
         c = self.config

@@ -2,7 +2,9 @@
 
 Limits: 1..128 features, each name 1..128 printable characters, unique, not
 ``"intercept"`` when the intercept is on; ``forgetting`` in (0, 1];
-``half_life`` > 0 seconds (excludes forgetting < 1); ``ridge`` >= 0 and finite.
+``half_life`` > 0 seconds (excludes forgetting < 1); ``ridge`` >= 0 and finite;
+``drift`` an optional object of drift thresholds and the outlier gate (validated in
+:func:`leastwise.models.drift.parse_drift`; defaults in ``DRIFT_DEFAULTS``).
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ import orjson
 
 from leastwise.engine import MAX_ABS_VALUE, Spec
 
+from .drift import parse_drift
 from .errors import FieldError, InvalidInput, pointer
 
 __all__ = ["ModelConfig", "MAX_FEATURES", "NAME_PATTERN", "check_model_name", "INTERCEPT"]
@@ -24,7 +27,7 @@ MAX_FEATURES = 128
 INTERCEPT = "intercept"
 NAME_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,127}")
 _FEATURE_NAME = re.compile(r"[^\x00-\x1f\x7f]{1,128}")
-_FIELDS = {"features", "intercept", "forgetting", "half_life", "ridge"}
+_FIELDS = {"features", "intercept", "forgetting", "half_life", "ridge", "drift"}
 
 
 def check_model_name(name: str) -> str:
@@ -60,6 +63,8 @@ class ModelConfig:
     forgetting: float = 1.0
     half_life: float | None = None
     ridge: float = 0.0
+    #: drift settings that differ from the defaults (see models/drift.py, docs/drift.md), sorted by name
+    drift: tuple[tuple[str, Any], ...] = ()
 
     @classmethod
     def parse(cls, body: Any) -> "ModelConfig":
@@ -103,17 +108,21 @@ class ModelConfig:
             errors.append(FieldError("/ridge", "must be a number >= 0"))
         if ridge is not None and not ridge >= 0.0:
             errors.append(FieldError("/ridge", "must be >= 0"))
+        drift = parse_drift(body.get("drift"), errors)
         if errors:
             raise InvalidInput("; ".join(f"{e.pointer}: {e.reason}" for e in errors), errors)
-        return cls(names, intercept, float(forgetting), half_life, float(ridge))
+        return cls(names, intercept, float(forgetting), half_life, float(ridge), drift)
 
     @classmethod
     def from_json(cls, text: str) -> "ModelConfig":
         return cls.parse(orjson.loads(text))
 
     def to_dict(self) -> dict[str, Any]:
-        return {"features": list(self.features), "intercept": self.intercept, "forgetting": self.forgetting,
-                "half_life": self.half_life, "ridge": self.ridge}
+        out = {"features": list(self.features), "intercept": self.intercept, "forgetting": self.forgetting,
+               "half_life": self.half_life, "ridge": self.ridge}
+        if self.drift:  # only the drift settings that differ from the defaults
+            out["drift"] = dict(self.drift)
+        return out
 
     def to_json(self) -> str:
         return orjson.dumps(self.to_dict()).decode()

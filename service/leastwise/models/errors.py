@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 __all__ = ["FieldError", "RegistryError", "InvalidInput", "NotFound", "Conflict", "Busy"]
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 
-from sqlalchemy import delete, func, insert, select, update
+from sqlalchemy import bindparam, delete, func, insert, select, tuple_, update
 from sqlalchemy.engine import Connection
 
 from .tables import checkpoints, idempotency_keys, models, observations, snapshots
@@ -13,7 +13,7 @@ from .tables import checkpoints, idempotency_keys, models, observations, snapsho
 __all__ = [
     "ModelRow", "LogRow", "CheckpointRow", "SnapshotRow", "PendingWrite",
     "insert_model", "model_by_name", "list_models", "lock_model", "delete_model", "bump_model",
-    "latest_checkpoint", "insert_checkpoint", "log_after", "find_keys", "write_pending",
+    "latest_checkpoint", "insert_checkpoint", "log_after", "find_keys", "find_keys_many", "write_pending",
     "insert_snapshot", "list_snapshots", "get_snapshot", "delete_snapshot", "compact",
 ]
 
@@ -81,6 +81,8 @@ class PendingWrite:
     new_epoch: int | None = None
     compact: bool = False
     accepted: bool = False
+    #: drift status changes caused by these rows (dicts, see store/drift.py), written in the same transaction
+    drift_events: Sequence[dict] = ()
 
 
 def _model(row) -> ModelRow:  # noqa: ANN001
@@ -171,35 +173,83 @@ def find_keys(conn: Connection, model_id: int, keys: Iterable[str]) -> dict[str,
     return found
 
 
+def find_keys_many(conn: Connection, pairs: Iterable[tuple[int, str]]) -> dict[tuple[int, str], int]:
+    """``find_keys`` for many models at once: ``{(model_id, key): seq}`` for the pairs already recorded."""
+    wanted = list(dict.fromkeys(pairs))
+    found: dict[tuple[int, str], int] = {}
+    for start in range(0, len(wanted), 400):
+        chunk = wanted[start : start + 400]
+        models_in = {m for m, _ in chunk}
+        if len(models_in) == 1:
+            (mid,) = models_in
+            cond = (idempotency_keys.c.model_id == mid) & idempotency_keys.c.key.in_([k for _, k in chunk])
+        else:
+            cond = tuple_(idempotency_keys.c.model_id, idempotency_keys.c.key).in_(chunk)
+        for mid, key, seq in conn.execute(
+            select(idempotency_keys.c.model_id, idempotency_keys.c.key, idempotency_keys.c.seq).where(cond)
+        ):
+            found[(mid, key)] = seq
+    return found
+
+
 def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) -> None:
     """Apply prepared writes inside the caller's transaction.
 
     Each model row is locked and its version compared with the write's
     ``expected_version``; a stale write is skipped (``accepted`` stays False).
+    Several writes to one model chain in order (each expects the version the
+    previous one sets). The rows of all accepted writes go in with one
+    multi-row insert per table and one batched version update, so a group of
+    many requests costs a handful of statements.
     """
+    if not writes:
+        return
+    ids = sorted({w.model_id for w in writes})  # sorted: concurrent groups lock rows in one order
+    current: dict[int, int] = {}
+    for start in range(0, len(ids), 500):
+        chunk = ids[start : start + 500]
+        for mid, version in conn.execute(
+            select(models.c.id, models.c.version).where(models.c.id.in_(chunk)).order_by(models.c.id).with_for_update()
+        ):
+            current[mid] = version
+    log_rows: list[dict] = []
+    key_rows: list[dict] = []
+    final: dict[int, PendingWrite] = {}
     for w in writes:
-        row = lock_model(conn, w.model_id)
-        if row is None or row.version != w.expected_version:
+        if current.get(w.model_id) != w.expected_version:
             w.accepted = False
             continue
-        if w.rows:
-            conn.execute(
-                insert(observations),
-                [
-                    {"model_id": w.model_id, "seq": r.seq, "x": r.x, "y": r.y, "t": r.t, "key": r.key,
-                     "status": r.status, "received": r.received}
-                    for r in w.rows
-                ],
-            )
-            keyed = [{"model_id": w.model_id, "key": r.key, "seq": r.seq} for r in w.rows if r.key is not None]
-            if keyed:
-                conn.execute(insert(idempotency_keys), keyed)
-        if w.checkpoint is not None:
+        mid = w.model_id
+        for r in w.rows:
+            log_rows.append({"model_id": mid, "seq": r.seq, "x": r.x, "y": r.y, "t": r.t, "key": r.key,
+                             "status": r.status, "received": r.received})
+            if r.key is not None:
+                key_rows.append({"model_id": mid, "key": r.key, "seq": r.seq})
+        current[mid] = w.new_version
+        final[mid] = w
+        w.accepted = True
+    if log_rows:
+        conn.execute(insert(observations), log_rows)
+    if key_rows:
+        conn.execute(insert(idempotency_keys), key_rows)
+    for w in writes:
+        if w.accepted and w.checkpoint is not None:
             insert_checkpoint(conn, w.model_id, w.checkpoint, now)
             if w.compact:
                 compact(conn, w.model_id)
-        bump_model(conn, w.model_id, w.new_version, w.new_seq, w.new_epoch)
-        w.accepted = True
+        if w.accepted and w.drift_events:
+            from .drift import insert_events  # drift.py imports this module
+
+            insert_events(conn, w.model_id, w.drift_events, now)
+    plain = [{"_id": w.model_id, "_v": w.new_version, "_s": w.new_seq} for w in final.values() if w.new_epoch is None]
+    if plain:
+        conn.execute(
+            update(models).where(models.c.id == bindparam("_id")).values(version=bindparam("_v"), seq=bindparam("_s")),
+            plain,
+        )
+    for w in final.values():
+        if w.new_epoch is not None:
+            bump_model(conn, w.model_id, w.new_version, w.new_seq, w.new_epoch)
 
 
 def compact(conn: Connection, model_id: int | None = None) -> int:

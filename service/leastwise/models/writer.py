@@ -1,0 +1,165 @@
+"""Group commit: one writer thread per database shares one transaction among the requests that queue up.
+
+A request thread hands a job to :meth:`GroupWriter.submit` and blocks on the
+returned :class:`Ticket`. The writer thread takes every job that queued up
+while the previous transaction was committing (at most ``max_group``), hands
+the list to the registry's group handler (which prepares the engine updates
+on copies, writes them with :func:`commit_group` in *one* transaction and,
+after the commit, swaps the copies in), and the handler resolves each ticket.
+So each answer still waits for the commit of its own transaction, and the
+cost of a commit (an fsync on SQLite, a round trip and WAL flush on
+PostgreSQL) is shared by everyone who arrived while the previous one was in
+flight. An idle writer commits a lone request at once: no added latency.
+
+``LEASTWISE_DEBUG_COMMIT_DELAY`` (seconds, tests only) sleeps inside the write
+transaction, after the rows are written and before the commit, so a test can
+kill the process while a group commit is in flight.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import queue
+import threading
+import time
+from collections.abc import Callable, Sequence
+from typing import Any
+
+from sqlalchemy.exc import IntegrityError
+
+from leastwise.store import PendingWrite, Store
+from leastwise.store import queries as q
+
+__all__ = ["Ticket", "GroupWriter", "commit_group", "debug_commit_delay"]
+
+log = logging.getLogger("leastwise.models.writer")
+
+_STOP = object()
+
+
+def debug_commit_delay() -> float:
+    raw = os.environ.get("LEASTWISE_DEBUG_COMMIT_DELAY", "")
+    try:
+        return max(0.0, float(raw)) if raw else 0.0
+    except ValueError:
+        return 0.0
+
+
+class Ticket:
+    """One queued job and, once resolved, its outcome."""
+
+    __slots__ = ("job", "_done", "_value", "_error")
+
+    def __init__(self, job: Any) -> None:
+        self.job = job
+        self._done = threading.Event()
+        self._value: Any = None
+        self._error: BaseException | None = None
+
+    @property
+    def resolved(self) -> bool:
+        return self._done.is_set()
+
+    def resolve(self, value: Any) -> None:
+        if not self._done.is_set():
+            self._value = value
+            self._done.set()
+
+    def fail(self, error: BaseException) -> None:
+        if not self._done.is_set():
+            self._error = error
+            self._done.set()
+
+    def wait(self) -> Any:
+        self._done.wait()
+        if self._error is not None:
+            raise self._error
+        return self._value
+
+
+class GroupWriter:
+    """The writer thread of one database. ``handler(tickets)`` must resolve every ticket it is given."""
+
+    def __init__(self, handler: Callable[[list[Ticket]], None], *, max_group: int = 256,
+                 name: str = "leastwise-writer") -> None:
+        self.handler = handler
+        self.max_group = max(1, max_group)
+        self._queue: queue.SimpleQueue[Any] = queue.SimpleQueue()
+        self._closed = False
+        self.groups = 0  # transactions run (for tests and metrics)
+        self.jobs = 0
+        self._thread = threading.Thread(target=self._run, name=name, daemon=True)
+        self._thread.start()
+
+    def submit(self, job: Any) -> Ticket:
+        if self._closed:
+            raise RuntimeError("the writer is closed")
+        ticket = Ticket(job)
+        self._queue.put(ticket)
+        return ticket
+
+    def close(self, timeout: float = 10.0) -> None:
+        if not self._closed:
+            self._closed = True
+            self._queue.put(_STOP)
+            self._thread.join(timeout)
+
+    def _run(self) -> None:
+        stop = False
+        while not stop:
+            first = self._queue.get()
+            if first is _STOP:
+                return
+            batch = [first]
+            while len(batch) < self.max_group:
+                try:
+                    item = self._queue.get_nowait()
+                except queue.Empty:
+                    break
+                if item is _STOP:
+                    stop = True
+                    break
+                batch.append(item)
+            self.groups += 1
+            self.jobs += len(batch)
+            try:
+                self.handler(batch)
+            except BaseException as exc:  # noqa: BLE001 - every waiting request gets the error
+                if not isinstance(exc, Exception):
+                    log.error("writer interrupted", exc_info=True)
+                for ticket in batch:
+                    ticket.fail(exc)
+            for ticket in batch:  # a handler bug must never leave a request waiting forever
+                if not ticket.resolved:
+                    ticket.fail(RuntimeError("the writer did not answer this request"))
+
+
+def commit_group(store: Store, writes: Sequence[PendingWrite], now: float, delay: float = 0.0) -> None:
+    """Write ``writes`` in one transaction and commit; ``accepted`` tells which were applied.
+
+    A stale write (its model moved on) is skipped and the others commit. A
+    constraint violation (a key or seq written meanwhile by another process)
+    rolls back the group; each write is then retried in a transaction of its
+    own, so one conflict only rejects its own write. Any other error (the
+    database is unavailable) propagates with nothing committed.
+    """
+    if not writes:
+        return
+    try:
+        with store.write() as conn:
+            q.write_pending(conn, writes, now)
+            if delay:
+                time.sleep(delay)
+        return
+    except IntegrityError:
+        if len(writes) == 1:
+            writes[0].accepted = False
+            return
+    for w in writes:
+        w.accepted = False
+        try:
+            with store.write() as conn:
+                q.write_pending(conn, [w], now)
+        except IntegrityError:
+            w.accepted = False

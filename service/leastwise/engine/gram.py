@@ -66,12 +66,13 @@ def fold(gram: NDArray[np.longdouble], rows: NDArray[np.float64]) -> NDArray[np.
 
 
 def refine(
-    R: NDArray[np.float64], colnorm: NDArray[np.float64], w0: NDArray[np.float64],
+    R: NDArray[np.float64], rcond: float, w0: NDArray[np.float64],
     gram: NDArray[np.longdouble], exact_sums: bool,
 ) -> tuple[NDArray[np.float64], bool]:
     """Refine ``w0`` against the extended Gram matrix when that cannot lose accuracy.
 
-    With ``kappa`` the 2-norm condition of the column-equilibrated factor, the
+    With ``kappa = 1/rcond`` the (LAPACK ``dtrcon``) condition estimate of the
+    column-equilibrated factor, the
     factor's solution has a first-order error of order ``u_d kappa`` (plus a
     ``kappa^2 tan(theta)`` term for large residuals; Golub & Van Loan, Thm
     5.3.1) and the normal equations held in ``G`` one of order
@@ -89,10 +90,9 @@ def refine(
     d = w0.shape[0]
     if EXTENDED_ROUNDOFF >= DOUBLE_ROUNDOFF:
         return w0, False
-    s = np.linalg.svd(R / colnorm, compute_uv=False)
-    if not s[-1] > 0.0:
+    if not rcond > 0.0:
         return w0, False
-    kappa = float(s[0] / s[-1])
+    kappa = 1.0 / rcond  # LAPACK dtrcon estimate (1-norm) for the column-equilibrated factor
     kappa_a = kappa * kappa
     if kappa_a * DOUBLE_ROUNDOFF * d > CONVERGENCE_LIMIT:
         return w0, False

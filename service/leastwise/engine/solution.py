@@ -139,7 +139,7 @@ def solve(
         w, info = dtrtrs(R, z, lower=0, trans=0)
         w = np.asarray(w, dtype=np.float64).reshape(d)
         if gram is not None:
-            w, refined = refine(R, colnorm, w, gram, exact_sums)
+            w, refined = refine(R, rcond, w, gram, exact_sums)
         rank = d
         unidentified = np.zeros((0, d))
         if info != 0 or not np.isfinite(w).all():  # pragma: no cover - excluded by the tests above

@@ -365,6 +365,14 @@ class State:
             self._merge_span(self._pending)
         self._pending_n = 0
 
+    def _merge_span(self, rows: np.ndarray) -> None:
+        lsb, top = value_span(rows)
+        np.minimum(self._span_lsb, lsb, out=self._span_lsb)
+        np.maximum(self._span_top, top, out=self._span_top)
+        # Spans only widen and n only grows: once the sums can round, they stay so.
+        if not sums_are_exact(self._span_lsb, self._span_top, self.n + FOLD_ROWS):
+            self._sums_exact = False
+
     def _renormalise(self, scale: float) -> None:
         """Fold ``scale`` into the factor and the Gram matrix (one rounding) and restart the scale at 1.
 
@@ -399,11 +407,6 @@ class State:
         if self.n == 0:
             return 1.0
         return 2.0 ** (-(t - self._scale_origin) / (2.0 * self.spec.half_life))
-
-    def _merge_span(self, rows: np.ndarray) -> None:
-        lsb, top = value_span(rows)
-        np.minimum(self._span_lsb, lsb, out=self._span_lsb)
-        np.maximum(self._span_top, top, out=self._span_top)
 
     def _sigma_now(self) -> float | None:
         """Sigma of the current state from the factor alone; ``None`` if not estimable.

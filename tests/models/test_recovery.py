@@ -118,3 +118,16 @@ def test_two_registries_share_one_database(sqlite_url):
     b.delete("m")
     a.create("m", {"features": ["z"]})
     assert b.get("m")[0]["config"]["features"] == ["z"]
+
+
+def test_a_recreated_model_is_not_mistaken_for_the_old_one(sqlite_url):
+    # SQLite may hand a deleted row's id to the next model; id, version and epoch can then all
+    # match what another process still holds in memory. The creation time tells them apart.
+    first, second = _registry(sqlite_url), _registry(sqlite_url)
+    first.create("m", {"features": ["a"]})
+    assert second.get("m")[0]["config"]["features"] == ["a"]
+    first.delete("m")
+    first.create("m", {"features": ["b", "c"]})
+    assert second.get("m")[0]["config"]["features"] == ["b", "c"]
+    first.store.close()
+    second.store.close()

@@ -17,8 +17,10 @@ checkpoint plus replay after a reset/restore) and the request is recomputed.
 writes so commits of many requests can be grouped into one transaction later.
 
 Reads validate the in-memory version against the model row (one small
-SELECT) and catch up the same way, so several processes sharing one
-PostgreSQL database see each other's changes.
+pre-compiled SELECT, :meth:`Store.model_version`) and catch up the same way,
+so several processes sharing one PostgreSQL database see each other's changes.
+The GET body is built once per version and kept on the live model (see
+:meth:`LiveModel.get_body`).
 
 Replays are bit-exact: the live path and replay apply the same rows with the
 same ``State.update`` calls to states that never had their solution cached
@@ -87,6 +89,8 @@ class LiveModel:
     checkpoint_seq: int
     checkpoint_version: int
     view: State | None = None  # a copy with its solution cached, for reads at ``version``
+    #: the GET body and ETag, with what they were built from (see ``get_body``)
+    body: tuple[Any, ...] | None = None
 
     def read_view(self) -> State:
         # The live state is never updated in place (every write works on a copy and swaps it in),
@@ -97,6 +101,32 @@ class LiveModel:
 
     def etag(self) -> str:
         return f'"{self.id}.{self.version}"'
+
+    def get_body(self) -> tuple[dict[str, Any], str]:
+        """The ``GET /v1/models/{name}`` body and ETag, built once per version (the caller must not mutate it).
+
+        The cache is keyed on the version and epoch and on the *identity* of the
+        state, monitor and config objects: every change (observe, catch-up,
+        reset, restore, drift reference move, reload after a delete and
+        re-create) swaps in new objects or a new version, and none of them is
+        changed in place while live, so any change invalidates the body.
+        """
+        c = self.body
+        if (c is not None and c[0] == self.version and c[1] == self.epoch and c[2] is self.state
+                and c[3] is self.monitor and c[4] is self.config):
+            return c[5], c[6]
+        state, monitor, config = self.state, self.monitor, self.config
+        out = {
+            "name": self.name,
+            "config": config.to_dict(),
+            "version": self.version,
+            "created": rfc3339(self.created),
+            **state_view(config, self.read_view()),
+            "drift": monitor.status(),
+        }
+        etag = self.etag()
+        self.body = (self.version, self.epoch, state, monitor, config, out, etag)
+        return out, etag
 
 
 @dataclass(slots=True)
@@ -242,14 +272,21 @@ class Registry:
 
     def _current(self, entry: _Entry, name: str) -> LiveModel:
         """The live model, validated against the stored version (caller holds ``entry.lock``)."""
+        live = entry.live
+        if live is not None:
+            # the quick check: one pre-compiled SELECT of (id, version, epoch, created); anything else takes the full path
+            seen = self.store.model_version(name)
+            if (seen is not None and seen[0] == live.id and seen[1] == live.version and seen[2] == live.epoch
+                    and seen[3] == live.created):
+                return live
         with self.store.read() as conn:
             row = q.model_by_name(conn, name)
             if row is None:
                 entry.live = None
                 raise NotFound(f"no model named {name!r}")
             live = entry.live
-            if live is None:
-                live = self._load(row, conn)
+            if live is None or live.id != row.id or live.created != row.created:
+                live = self._load(row, conn)  # first use, or the name now belongs to a re-created model
             elif live.id != row.id or live.version != row.version:
                 live = self._catch_up(live, row, conn)
         entry.live = live
@@ -321,19 +358,10 @@ class Registry:
             return self._current(entry, name).etag()
 
     def get(self, name: str) -> tuple[dict[str, Any], str]:
-        """State description and its ETag."""
+        """State description and its ETag (the description is shared, built once per version: do not mutate it)."""
         entry = self._entry(name)
         with entry.lock:
-            live = self._current(entry, name)
-            out = {
-                "name": live.name,
-                "config": live.config.to_dict(),
-                "version": live.version,
-                "created": rfc3339(live.created),
-                **state_view(live.config, live.read_view()),
-                "drift": live.monitor.status(),
-            }
-            return out, live.etag()
+            return self._current(entry, name).get_body()
 
     # ------------------------------------------------------------ observations
     def observe(self, name: str, body: Any) -> dict[str, Any]:

@@ -12,7 +12,7 @@ from .tables import checkpoints, idempotency_keys, models, observations, snapsho
 
 __all__ = [
     "ModelRow", "LogRow", "CheckpointRow", "SnapshotRow", "PendingWrite",
-    "insert_model", "model_by_name", "list_models", "lock_model", "delete_model", "bump_model",
+    "insert_model", "model_by_name", "MODEL_VERSION", "list_models", "lock_model", "delete_model", "bump_model",
     "latest_checkpoint", "insert_checkpoint", "log_after", "find_keys", "find_keys_many", "write_pending",
     "insert_snapshot", "list_snapshots", "get_snapshot", "delete_snapshot", "compact",
 ]
@@ -101,6 +101,15 @@ def insert_model(conn: Connection, name: str, config: str, created: float, check
 def model_by_name(conn: Connection, name: str) -> ModelRow | None:
     row = conn.execute(select(models).where(models.c.name == name)).first()
     return _model(row) if row is not None else None
+
+
+#: ``(id, version, epoch)`` of the model named ``:name``: the read path's version check (run by
+#: :meth:`leastwise.store.Store.model_version`, compiled once per store)
+# (id, version, epoch, created): ``created`` tells a re-created model from the old one when
+# SQLite hands out a deleted row's id again.
+MODEL_VERSION = select(models.c.id, models.c.version, models.c.epoch, models.c.created).where(
+    models.c.name == bindparam("name")
+)
 
 
 def list_models(conn: Connection) -> list[ModelRow]:

@@ -31,6 +31,8 @@ def create_app(settings: Settings | None = None, registry: Registry | None = Non
     app = FastAPI(title="leastwise", version=__version__, docs_url="/docs", redoc_url=None)
     app.state.settings = settings
     app.state.registry = registry
+    # Fresh GETs may be answered on the event loop only where the version check is local (SQLite).
+    app.state.inline_reads = registry.store.engine.dialect.name == "sqlite"
     install_handlers(app)
     app.include_router(router)
     install_access(app, settings, registry.store)  # tokens, scopes, audit (api/auth.py)

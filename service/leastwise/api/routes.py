@@ -79,11 +79,19 @@ async def put_model(name: str, request: Request) -> Response:
 async def get_model(name: str, request: Request) -> Response:
     registry = _registry(request)
     wanted = request.headers.get("if-none-match")
-    if wanted:
-        etag = await run_in_threadpool(registry.etag, name)
-        if _etag_matches(wanted, etag):
+    # Dashboards poll: on the embedded database a fresh, already built answer is given
+    # straight from the event loop (a ~15 us check), saving the worker-thread hop.
+    fresh = registry.get_if_fresh(name) if request.app.state.inline_reads else None
+    if fresh is None:
+        if wanted:
+            etag = await run_in_threadpool(registry.etag, name)
+            if _etag_matches(wanted, etag):
+                return Response(status_code=304, headers={"ETag": etag, "Cache-Control": "no-cache"})
+        out, etag = await run_in_threadpool(registry.get, name)
+    else:
+        out, etag = fresh
+        if wanted and _etag_matches(wanted, etag):
             return Response(status_code=304, headers={"ETag": etag, "Cache-Control": "no-cache"})
-    out, etag = await run_in_threadpool(registry.get, name)
     return json_response(out, headers={"ETag": etag, "Cache-Control": "no-cache"})
 
 

@@ -13,11 +13,12 @@ the triangular factor of a QR decomposition of the weighted data matrix
 ``[sqrt(b_0 delta) I, 0]`` (Golub & Van Loan, *Matrix Computations*, 4th ed.,
 sec. 6.5.3 "updating the QR factorization"; Bierman, *Factorization Methods
 for Discrete Sequential Estimation*, 1977, ch. V, square-root information
-filter). Forgetting multiplies ``M`` by ``sqrt(f)``; a new row is absorbed by
+filter). Forgetting is carried by a scalar scale outside ``M`` (see
+:mod:`.state`): each new row enters divided by it and is absorbed by
 Householder reflections (LAPACK ``dtpqrt``), which are backward stable. The
 inverse moment matrix ``P = A^{-1}`` is never propagated, so there is no
-"covariance windup": ``M`` only ever shrinks under forgetting and grows by
-finite rows.
+"covariance windup": the true factor only ever shrinks under forgetting and
+grows by finite rows.
 
 Every function here is pure arithmetic on arrays.
 """
@@ -27,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.linalg.lapack import dtpqrt
 
-__all__ = ["new_factor", "absorb_rows", "BLOCK_CHUNK"]
+__all__ = ["new_factor", "absorb_rows", "block_size", "BLOCK_CHUNK"]
 
 #: Rows handed to LAPACK per call on the block path (bounded working memory).
 BLOCK_CHUNK = 8192
@@ -45,6 +46,11 @@ def new_factor(dim: int, ridge: float) -> np.ndarray:
     return factor
 
 
+def block_size(n: int) -> int:
+    """LAPACK ``dtpqrt`` block size for an ``n``-column factor (measured: 8 is fastest from d = 8 to 128)."""
+    return n if n < 8 else 8
+
+
 def absorb_rows(factor: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """Absorb weighted rows ``[x^T, y]`` into the augmented factor.
 
@@ -55,9 +61,7 @@ def absorb_rows(factor: np.ndarray, rows: np.ndarray) -> np.ndarray:
     overwritten with the reflectors. Returns the updated factor (the same
     buffer when LAPACK could work in place).
     """
-    n = factor.shape[0]
-    block = min(n, 8)  # measured: nb=8 is fastest from d=8 to d=128 on one row and on 8192
-    out, _v, _t, info = dtpqrt(0, block, factor, rows, overwrite_a=1, overwrite_b=1)
+    out, _v, _t, info = dtpqrt(0, block_size(factor.shape[0]), factor, rows, overwrite_a=1, overwrite_b=1)
     if info != 0:  # pragma: no cover - only on an argument error, a programming bug
         raise RuntimeError(f"dtpqrt failed with info={info}")
     return out

@@ -25,7 +25,7 @@ from scipy.linalg.blas import dtrsv
 from .errors import DimensionError, NonFiniteError, TimeOrderError
 from scipy.linalg.lapack import dtpqrt as _tpqrt
 
-from .factor import BLOCK_CHUNK, absorb_rows, new_factor
+from .factor import BLOCK_CHUNK, absorb_rows, block_size, new_factor
 from .gram import _NO_EXP, _NO_LSB, EXTENDED, FOLD_ROWS, fold, new_gram, sums_are_exact, value_span
 from .solution import Excitation, Prediction, Solution, excitation, inverse_moment, predict, solve
 from .spec import Spec
@@ -341,11 +341,10 @@ class State:
             pending[k] /= scale
         row = pending[k:k + 1]
         # overwrite_b=0: LAPACK works on a copy, the buffered row stays for the Gram fold.
-        self._factor = _tpqrt(0, _nb(d + 1), self._factor, row, overwrite_a=1, overwrite_b=0)[0]
+        self._factor = _tpqrt(0, block_size(d + 1), self._factor, row, overwrite_a=1, overwrite_b=0)[0]
+        self._pending_n = k + 1
         if k + 1 == FOLD_ROWS:
-            self._fold_pending()
-        else:
-            self._pending_n = k + 1
+            self._fold_all_pending()
         self.n += 1
         self.prior_weight *= decay
         self.weight_sum = decay * self.weight_sum + 1.0
@@ -358,13 +357,6 @@ class State:
         self._sigma = -1.0
         return Step(prediction, residual, lev, recursive, standardized, decay)
 
-    def _fold_pending(self) -> None:
-        """The buffer is full: fold all FOLD_ROWS rows into the Gram matrix."""
-        self._gram = fold(self._gram, self._pending)
-        if self._sums_exact:
-            self._merge_span(self._pending)
-        self._pending_n = 0
-
     def _merge_span(self, rows: np.ndarray) -> None:
         lsb, top = value_span(rows)
         np.minimum(self._span_lsb, lsb, out=self._span_lsb)
@@ -376,7 +368,7 @@ class State:
     def _renormalise(self, scale: float) -> None:
         """Fold ``scale`` into the factor and the Gram matrix (one rounding) and restart the scale at 1.
 
-        Happens when the scale drops below 2^-128, e.g. every ~29,000 steps at lambda = 0.99.
+        Happens when the scale drops below 2^-128, e.g. every ~17,600 steps at lambda = 0.99.
         """
         self._fold_all_pending()
         self._factor *= scale
@@ -385,6 +377,7 @@ class State:
         self._scale = 1.0
 
     def _fold_all_pending(self) -> None:
+        """Fold the buffered rows into the Gram matrix (when the buffer is full, or before a change of scale)."""
         k = self._pending_n
         if k == 0:
             return
@@ -431,36 +424,29 @@ class State:
         return value or None
 
     def _decay_for(self, t: float | None) -> float:
-        if self.spec.half_life is None:
-            if t is not None and self.last_time is not None and t < self.last_time:
-                raise TimeOrderError(f"time {t!r} is earlier than the last observation's {self.last_time!r}")
-            return float(self.spec.forgetting)
-        if t is None:
-            raise TimeOrderError("a model with a half-life needs a time on every observation")
-        if self.last_time is None:
-            return 1.0  # the prior sits at the first observation's time
-        if t < self.last_time:
-            raise TimeOrderError(f"time {t!r} is earlier than the last observation's {self.last_time!r}")
-        return 2.0 ** (-(t - self.last_time) / self.spec.half_life)
+        return self._decay_between(self.last_time, t)
 
     def _decays_for(self, t: np.ndarray | None, count: int) -> list[float]:
         if t is None:
-            if self.spec.half_life is not None:
-                raise TimeOrderError("a model with a half-life needs a time on every observation")
-            return [float(self.spec.forgetting)] * count
+            return [self._decay_between(self.last_time, None)] * count
         last = self.last_time
         out = []
         for ti in t.tolist():
-            if last is not None and ti < last:
-                raise TimeOrderError(f"time {ti!r} is earlier than the previous observation's {last!r}")
-            if self.spec.half_life is None:
-                out.append(float(self.spec.forgetting))
-            elif last is None:
-                out.append(1.0)
-            else:
-                out.append(2.0 ** (-(ti - last) / self.spec.half_life))
+            out.append(self._decay_between(last, ti))
             last = ti
         return out
+
+    def _decay_between(self, last: float | None, t: float | None) -> float:
+        """The decay ``f`` of an observation at ``t`` following one at ``last`` (DESIGN.md weights)."""
+        if t is not None and last is not None and t < last:
+            raise TimeOrderError(f"time {t!r} is earlier than the previous observation's {last!r}")
+        if self.spec.half_life is None:
+            return float(self.spec.forgetting)
+        if t is None:
+            raise TimeOrderError("a model with a half-life needs a time on every observation")
+        if last is None:
+            return 1.0  # the prior sits at the first observation's time
+        return 2.0 ** (-(t - last) / self.spec.half_life)
 
     def _check_vector(self, x: ArrayLike) -> np.ndarray:
         _reject_booleans(x, "x")
@@ -520,7 +506,17 @@ class State:
         return load_state(data)
 
     def copy(self) -> "State":
-        return State.from_bytes(self.to_bytes())
+        """An independent copy, equal bit for bit to a ``to_bytes``/``from_bytes`` round trip.
+
+        Copies slot by slot (arrays copied, scalars shared; ~5 us at d = 8 instead of
+        ~90 us for the byte round trip). The cached solution is not carried over.
+        """
+        new = State.__new__(State)
+        for slot in State.__slots__:
+            value = getattr(self, slot)
+            setattr(new, slot, value.copy() if type(value) is np.ndarray else value)
+        new._solution = None
+        return new
 
     def __repr__(self) -> str:
         return f"State(dim={self.dim}, n={self.n}, forgetting={self.spec.forgetting}, half_life={self.spec.half_life}, ridge={self.spec.ridge})"
@@ -551,10 +547,6 @@ def _check_finite(a: np.ndarray, field: str) -> None:
             raise NonFiniteError(f"each row of {field} must be finite with Euclidean norm at most {MAX_ABS_VALUE:g}")
     elif not (np.abs(a) <= MAX_ABS_VALUE).all():
         raise NonFiniteError(f"{field} must be finite with magnitude at most {MAX_ABS_VALUE:g}")
-
-
-def _nb(n: int) -> int:
-    return n if n < 8 else 8  # LAPACK block size; see factor.absorb_rows
 
 
 def _check_scalar(v: float, field: str) -> float:

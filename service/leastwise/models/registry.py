@@ -135,21 +135,6 @@ class _Entry:
     live: LiveModel | None = None
 
 
-def _fast_copy(state: State) -> State:
-    """A copy of ``state`` equal bit for bit to ``state.copy()`` (slot by slot, without the byte round trip).
-
-    ``State.copy`` serialises and parses (~90 us at d = 8); this copies the
-    arrays (~5 us). The cached solution is dropped, like a freshly loaded state.
-    """
-    new = State.__new__(State)
-    for slot in _STATE_SLOTS:
-        value = getattr(state, slot)
-        setattr(new, slot, value.copy() if type(value) is np.ndarray else value)
-    new._solution = None
-    return new
-
-
-_STATE_SLOTS = tuple(State.__slots__)
 
 
 @dataclass(slots=True)
@@ -263,7 +248,7 @@ class Registry:
         """Bring ``live`` to ``row``'s version: replay the new log rows, or reload after a reset/restore."""
         if row.id != live.id or row.epoch != live.epoch or row.seq < live.seq:
             return self._load(row, conn)
-        state = _fast_copy(live.state)
+        state = live.state.copy()
         monitor = live.monitor.copy()
         drift_hooks.replay(state, monitor, drift_store.log_rows_after(conn, row.id, live.seq, upto=row.seq), _x_row)
         live.state, live.monitor, live.view = state, monitor, None
@@ -462,7 +447,7 @@ class Registry:
 
     def _prepare(self, live: LiveModel, observations: list[Observation], known: dict[str, int], now: float) -> "_Prepared":
         """Engine updates on copies of the live state, and the rows to write; memory is not touched."""
-        state = _fast_copy(live.state)
+        state = live.state.copy()
         monitor = live.monitor.copy()
         results, rows, seq, _keys = self._steps(live.config, state, monitor, observations, known, live.seq, now)
         pending = None
@@ -550,7 +535,7 @@ class Registry:
                     tip = _Tip(live, live.state, live.monitor, live.version, live.version, live.seq, live.checkpoint_seq)
                 tips[job.model_id] = tip
             model_known = known.setdefault(job.model_id, {})
-            state = _fast_copy(tip.state)
+            state = tip.state.copy()
             monitor = tip.monitor.copy()
             try:
                 results, rows, seq, keys = self._steps(job.config, state, monitor, job.observations, model_known,

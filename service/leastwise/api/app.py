@@ -10,6 +10,7 @@ from leastwise.settings import Settings
 from leastwise.store import Store
 
 from .auth import install_access
+from .fastlane import FastLane
 from .middleware import RequestLog
 from .problems import install_handlers
 from .routes import router
@@ -35,6 +36,7 @@ def create_app(settings: Settings | None = None, registry: Registry | None = Non
     app.state.inline_reads = registry.store.engine.dialect.name == "sqlite"
     install_handlers(app)
     app.include_router(router)
+    app.add_middleware(FastLane)  # innermost: after tokens and logging, before the router
     install_access(app, settings, registry.store)  # tokens, scopes, audit (api/auth.py)
     app.add_middleware(RequestLog)
     return app

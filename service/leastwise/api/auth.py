@@ -68,16 +68,16 @@ class Rule:
 
 
 #: the scope table: (method, route) -> required scope
-ROUTE_SCOPES: tuple[Rule, ...] = (
-    Rule("GET", "/v1/models", "read", "list"),
+ROUTE_SCOPES: tuple[Rule, ...] = (  # the hottest first: classify() stops at the first match
+    Rule("POST", "/v1/models/{name}/observations", "write", "observe"),
     Rule("GET", "/v1/models/{name}", "read", "state"),
+    Rule("GET", "/v1/models", "read", "list"),
     Rule("GET", "/v1/models/{name}/drift", "read", "drift"),
     Rule("GET", "/v1/models/{name}/drift/events", "read", "drift-events"),
     Rule("POST", "/v1/models/{name}/drift/reference", "admin", "drift-reference"),
     Rule("GET", "/v1/models/{name}/covariance", "read", "covariance"),
     Rule("POST", "/v1/models/{name}/predict", "read", "predict"),
     Rule("GET", "/v1/models/{name}/snapshots", "read", "snapshots"),
-    Rule("POST", "/v1/models/{name}/observations", "write", "observe"),
     Rule("PUT", "/v1/models/{name}", "admin", "create"),
     Rule("DELETE", "/v1/models/{name}", "admin", "delete"),
     Rule("POST", "/v1/models/{name}/reset", "admin", "reset"),

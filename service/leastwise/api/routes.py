@@ -15,7 +15,7 @@ from .auth import may_see
 from .body import MISSING, read_json
 from .problems import Problem
 
-__all__ = ["router", "json_response"]
+__all__ = ["router", "json_response", "model_state", "observe"]
 
 router = APIRouter()
 
@@ -77,6 +77,11 @@ async def put_model(name: str, request: Request) -> Response:
 
 @router.get("/v1/models/{name}")
 async def get_model(name: str, request: Request) -> Response:
+    return await model_state(name, request)
+
+
+async def model_state(name: str, request: Request) -> Response:
+    """``GET /v1/models/{name}`` (also answered by the fast lane, api/fastlane.py)."""
     registry = _registry(request)
     wanted = request.headers.get("if-none-match")
     # Dashboards poll: on the embedded database a fresh, already built answer is given
@@ -103,9 +108,13 @@ async def delete_model(name: str, request: Request) -> Response:
 
 @router.post("/v1/models/{name}/observations")
 async def post_observations(name: str, request: Request) -> Response:
+    return await observe(name, request)
+
+
+async def observe(name: str, request: Request) -> Response:
+    """``POST /v1/models/{name}/observations`` (also answered by the fast lane, api/fastlane.py)."""
     body = await read_json(request, _limit(request))
-    out = await run_in_threadpool(_registry(request).observe, name, body)
-    return json_response(out)
+    return json_response(await _registry(request).observe_async(name, body))
 
 
 @router.post("/v1/models/{name}/predict")

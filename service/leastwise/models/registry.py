@@ -37,6 +37,7 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
+import anyio.to_thread
 import numpy as np
 from sqlalchemy.exc import IntegrityError
 
@@ -393,6 +394,10 @@ class Registry:
                 return self._answer(config, job.state, job.results, job.applied, job.version)
             except _Stale:
                 pass
+        return self._observe_retry(entry, name, body)
+
+    def _observe_retry(self, entry: _Entry, name: str, body: Any) -> dict[str, Any]:
+        """Without grouping, or after a stale group write: under the model's lock, catching up as needed."""
         with entry.lock:
             live = self._cached(entry, name)
             config = live.config
@@ -412,6 +417,32 @@ class Registry:
                 except _Stale:
                     continue
             raise Busy(f"model {name!r} kept changing while the observations were applied; retry")
+
+    #: Bodies with more observations than this are parsed in a worker thread, not on the event loop.
+    INLINE_PARSE_LIMIT = 256
+
+    async def observe_async(self, name: str, body: Any) -> dict[str, Any]:
+        """:meth:`observe` for a coroutine: the request joins the next group commit without a worker thread.
+
+        Validation runs on the event loop (microseconds); the request then
+        awaits its group's commit. A model not yet in memory, a large batch,
+        ungrouped commits and the retry after another process wrote take
+        :meth:`observe` in a worker thread.
+        """
+        entry = self._entry(name)
+        live = entry.live  # read without the lock: the writer re-checks id and config under it
+        many = body.get("observations") if isinstance(body, dict) else None
+        if (live is None or not self.group_commit
+                or (isinstance(many, list) and len(many) > self.INLINE_PARSE_LIMIT)):
+            return await anyio.to_thread.run_sync(self.observe, name, body)
+        config = live.config
+        observations, _batch = parse_observations(body, config, self.max_batch)
+        job = _Job(entry, live.id, config, observations)
+        try:
+            await self._group_writer().submit_async(job)
+        except _Stale:
+            return await anyio.to_thread.run_sync(self._observe_retry, entry, name, body)
+        return self._answer(config, job.state, job.results, job.applied, job.version)
 
     def _observe_optimistic(self, live: LiveModel, observations: list[Observation]) -> dict[str, Any]:
         now = self.clock()
@@ -514,15 +545,40 @@ class Registry:
         they take the locked path.
         """
         now = self.clock()
-        pairs = [(t.job.model_id, o.key) for t in tickets for o in t.job.observations if o.key is not None]
-        found: dict[tuple[int, str], int] = {}
-        if pairs:
-            with self.store.read() as conn:
-                found = q.find_keys_many(conn, pairs)
+        tips: dict[int, _Tip] = {}
+
+        def prepare(conn: Any) -> list[PendingWrite]:
+            """Inside the write transaction: look up the keys, prepare every request, return the writes."""
+            pairs = [(t.job.model_id, o.key) for t in tickets for o in t.job.observations if o.key is not None]
+            found = q.find_keys_many(conn, pairs) if pairs else {}
+            return self._prepare_group(tickets, tips, found, now)
+
+        commit_group(self.store, prepare, now, self._commit_delay)  # raises: every ticket fails, memory untouched
+        for tip in tips.values():
+            w = tip.write
+            if w is not None and not w.accepted:
+                for ticket in tip.jobs:
+                    ticket.fail(_Stale())
+                continue
+            if w is not None:
+                entry = tip.jobs[0].job.entry
+                with entry.lock:
+                    live = tip.live
+                    # swap only what is still the base of this write (a read may have caught up meanwhile)
+                    if entry.live is live and live.version == w.expected_version:
+                        live.state, live.monitor, live.view = tip.state, tip.monitor, tip.state
+                        live.version, live.seq = w.new_version, w.new_seq
+                        if w.checkpoint is not None:
+                            live.checkpoint_seq, live.checkpoint_version = w.new_seq, w.new_version
+            for ticket in tip.jobs:
+                ticket.resolve(None)
+
+    def _prepare_group(self, tickets: list[Ticket], tips: dict[int, "_Tip"], found: dict[tuple[int, str], int],
+                       now: float) -> list[PendingWrite]:
+        """Chain every request on copies of its model's state (one tip per model); the writes to commit."""
         known: dict[int, dict[str, int]] = {}
         for (mid, key), seq in found.items():
             known.setdefault(mid, {})[key] = seq
-        tips: dict[int, _Tip] = {}
         for ticket in tickets:
             job: _Job = ticket.job
             tip = tips.get(job.model_id)
@@ -561,25 +617,7 @@ class Registry:
             tip.write = PendingWrite(mid, tip.base_version, tip.version, tip.seq, tip.rows, checkpoint,
                                      compact=self.compact_log, drift_events=tip.monitor.take_events())
             writes.append(tip.write)
-        commit_group(self.store, writes, now, self._commit_delay)  # raises: every ticket fails, memory untouched
-        for tip in tips.values():
-            w = tip.write
-            if w is not None and not w.accepted:
-                for ticket in tip.jobs:
-                    ticket.fail(_Stale())
-                continue
-            if w is not None:
-                entry = tip.jobs[0].job.entry
-                with entry.lock:
-                    live = tip.live
-                    # swap only what is still the base of this write (a read may have caught up meanwhile)
-                    if entry.live is live and live.version == w.expected_version:
-                        live.state, live.monitor, live.view = tip.state, tip.monitor, tip.state
-                        live.version, live.seq = w.new_version, w.new_seq
-                        if w.checkpoint is not None:
-                            live.checkpoint_seq, live.checkpoint_version = w.new_seq, w.new_version
-            for ticket in tip.jobs:
-                ticket.resolve(None)
+        return writes
 
     def _answer(self, config: ModelConfig, state: State, results: list[dict[str, Any]], applied: int,
                 version: int) -> dict[str, Any]:

@@ -1,7 +1,8 @@
 """Group commit: one writer thread per database shares one transaction among the requests that queue up.
 
-A request thread hands a job to :meth:`GroupWriter.submit` and blocks on the
-returned :class:`Ticket`. The writer thread takes every job that queued up
+A request hands a job to :meth:`GroupWriter.submit_async` and awaits the
+returned future on the event loop (a thread may use :meth:`GroupWriter.submit`
+and block on the :class:`Ticket`). The writer thread takes every job that queued up
 while the previous transaction was committing (at most ``max_group``), hands
 the list to the registry's group handler (which prepares the engine updates
 on copies, writes them with :func:`commit_group` in *one* transaction and,
@@ -18,6 +19,7 @@ kill the process while a group commit is in flight.
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import os
 import queue
@@ -47,35 +49,57 @@ def debug_commit_delay() -> float:
 
 
 class Ticket:
-    """One queued job and, once resolved, its outcome."""
+    """One queued job and, once the writer has answered its group, its outcome.
 
-    __slots__ = ("job", "_done", "_value", "_error")
+    A thread blocks in :meth:`wait`; a coroutine awaits :attr:`future` (see
+    :meth:`GroupWriter.submit_async`), which the writer settles on the
+    future's event loop with one wake-up per group, so an observation request
+    needs no worker thread of its own.
+    """
 
-    def __init__(self, job: Any) -> None:
+    __slots__ = ("job", "_done", "_value", "_error", "event", "future")
+
+    def __init__(self, job: Any, future: "asyncio.Future[Any] | None" = None) -> None:
         self.job = job
-        self._done = threading.Event()
+        self._done = False
         self._value: Any = None
         self._error: BaseException | None = None
+        self.future = future
+        self.event = threading.Event() if future is None else None
 
     @property
     def resolved(self) -> bool:
-        return self._done.is_set()
+        return self._done
 
     def resolve(self, value: Any) -> None:
-        if not self._done.is_set():
+        if not self._done:
             self._value = value
-            self._done.set()
+            self._done = True
 
     def fail(self, error: BaseException) -> None:
-        if not self._done.is_set():
+        if not self._done:
             self._error = error
-            self._done.set()
+            self._done = True
 
     def wait(self) -> Any:
-        self._done.wait()
+        """The outcome, once the writer has released this ticket (threads only)."""
+        assert self.event is not None, "an asynchronous ticket is awaited through its future"
+        self.event.wait()
         if self._error is not None:
             raise self._error
         return self._value
+
+
+def _settle(tickets: list[Ticket]) -> None:
+    """On the event loop: hand each outcome to its future (a cancelled request's future is skipped)."""
+    for t in tickets:
+        fut = t.future
+        if fut is None or fut.done():
+            continue
+        if t._error is not None:
+            fut.set_exception(t._error)
+        else:
+            fut.set_result(t._value)
 
 
 class GroupWriter:
@@ -93,11 +117,20 @@ class GroupWriter:
         self._thread.start()
 
     def submit(self, job: Any) -> Ticket:
+        """Queue ``job`` for a waiting thread: call ``.wait()`` on the ticket."""
         if self._closed:
             raise RuntimeError("the writer is closed")
         ticket = Ticket(job)
         self._queue.put(ticket)
         return ticket
+
+    def submit_async(self, job: Any) -> "asyncio.Future[Any]":
+        """Queue ``job`` from a coroutine on a running event loop; await the returned future."""
+        if self._closed:
+            raise RuntimeError("the writer is closed")
+        future = asyncio.get_running_loop().create_future()
+        self._queue.put(Ticket(job, future))
+        return future
 
     def close(self, timeout: float = 10.0) -> None:
         if not self._closed:
@@ -130,32 +163,53 @@ class GroupWriter:
                     log.error("writer interrupted", exc_info=True)
                 for ticket in batch:
                     ticket.fail(exc)
-            for ticket in batch:  # a handler bug must never leave a request waiting forever
-                if not ticket.resolved:
-                    ticket.fail(RuntimeError("the writer did not answer this request"))
+            self._release(batch)
+
+    @staticmethod
+    def _release(batch: list[Ticket]) -> None:
+        by_loop: dict[Any, list[Ticket]] = {}
+        for ticket in batch:
+            if not ticket.resolved:  # a handler bug must never leave a request waiting forever
+                ticket.fail(RuntimeError("the writer did not answer this request"))
+            if ticket.event is not None:
+                ticket.event.set()
+            else:
+                assert ticket.future is not None
+                by_loop.setdefault(ticket.future.get_loop(), []).append(ticket)
+        for loop, tickets in by_loop.items():
+            try:
+                loop.call_soon_threadsafe(_settle, tickets)
+            except RuntimeError:  # the loop has closed (shutdown): nobody is waiting any more
+                pass
 
 
-def commit_group(store: Store, writes: Sequence[PendingWrite], now: float, delay: float = 0.0) -> None:
-    """Write ``writes`` in one transaction and commit; ``accepted`` tells which were applied.
+def commit_group(store: Store, prepare: Callable[[Any], Sequence[PendingWrite]], now: float,
+                 delay: float = 0.0) -> Sequence[PendingWrite]:
+    """Open one write transaction, let ``prepare(conn)`` return the writes, write them and commit.
 
-    A stale write (its model moved on) is skipped and the others commit. A
-    constraint violation (a key or seq written meanwhile by another process)
-    rolls back the group; each write is then retried in a transaction of its
-    own, so one conflict only rejects its own write. Any other error (the
-    database is unavailable) propagates with nothing committed.
+    ``prepare`` runs inside the transaction (the idempotency-key lookup and
+    the engine updates of the whole group then cost one transaction, and on
+    SQLite the write lock is already held). ``accepted`` on each write tells
+    which were applied: a stale write (its model moved on) is skipped and the
+    others commit. A constraint violation (a key or seq written meanwhile by
+    another process) rolls back the group; each write is then retried in a
+    transaction of its own, so one conflict only rejects its own write. Any
+    other error (the database is unavailable) propagates with nothing committed.
     """
-    if not writes:
-        return
+    writes: Sequence[PendingWrite] = ()
     try:
         with store.write() as conn:
-            q.write_pending(conn, writes, now)
-            if delay:
-                time.sleep(delay)
-        return
+            writes = prepare(conn)
+            if writes:
+                q.write_pending(conn, writes, now)
+                if delay:
+                    time.sleep(delay)
+        return writes
     except IntegrityError:
-        if len(writes) == 1:
-            writes[0].accepted = False
-            return
+        if len(writes) <= 1:
+            for w in writes:
+                w.accepted = False
+            return writes
     for w in writes:
         w.accepted = False
         try:
@@ -163,3 +217,4 @@ def commit_group(store: Store, writes: Sequence[PendingWrite], now: float, delay
                 q.write_pending(conn, [w], now)
         except IntegrityError:
             w.accepted = False
+    return writes

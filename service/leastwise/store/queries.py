@@ -4,8 +4,9 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
+from typing import Any
 
-from sqlalchemy import bindparam, delete, func, insert, select, tuple_, update
+from sqlalchemy import bindparam, delete, func, insert, select, update
 from sqlalchemy.engine import Connection
 
 from .tables import checkpoints, idempotency_keys, models, observations, snapshots
@@ -182,23 +183,91 @@ def find_keys(conn: Connection, model_id: int, keys: Iterable[str]) -> dict[str,
     return found
 
 
+class _Raw:
+    """Hot statements run on the DBAPI cursor of the caller's SQLAlchemy connection (same transaction).
+
+    The write path of every observation runs these; SQLAlchemy's per-row
+    parameter processing costs tens of microseconds per statement and several
+    per row, while the driver's ``executemany`` with plain tuples costs a few.
+    The SQL is written once with ``?`` markers and rewritten for drivers that
+    use ``%s`` (psycopg). Driver errors are raised as SQLAlchemy's own
+    exception types, so callers catch one family.
+    """
+
+    __slots__ = ("conn", "cursor", "marker", "postgres")
+
+    def __init__(self, conn: Connection) -> None:
+        self.conn = conn
+        self.postgres = conn.dialect.name == "postgresql"
+        self.marker = "%s" if conn.dialect.paramstyle in ("format", "pyformat") else "?"
+        self.cursor = conn.connection.driver_connection.cursor()
+
+    def _sql(self, sql: str) -> str:
+        return sql if self.marker == "?" else sql.replace("?", self.marker)
+
+    def execute(self, sql: str, params: Sequence[Any] = ()) -> list[tuple]:
+        sql = self._sql(sql)
+        try:
+            self.cursor.execute(sql, params)
+            return self.cursor.fetchall() if self.cursor.description is not None else []
+        except self.conn.dialect.loaded_dbapi.Error as exc:
+            raise _wrap(sql, params, exc) from exc
+
+    def executemany(self, sql: str, rows: Sequence[Sequence[Any]]) -> None:
+        sql = self._sql(sql)
+        try:
+            self.cursor.executemany(sql, rows)
+        except self.conn.dialect.loaded_dbapi.Error as exc:
+            raise _wrap(sql, rows[:1], exc) from exc
+
+    def close(self) -> None:
+        self.cursor.close()
+
+
+def _wrap(sql: str, params: Any, exc: Exception) -> Exception:
+    from sqlalchemy import exc as sa_exc
+
+    return sa_exc.DBAPIError.instance(sql, params, exc, Exception)
+
+
 def find_keys_many(conn: Connection, pairs: Iterable[tuple[int, str]]) -> dict[tuple[int, str], int]:
     """``find_keys`` for many models at once: ``{(model_id, key): seq}`` for the pairs already recorded."""
     wanted = list(dict.fromkeys(pairs))
     found: dict[tuple[int, str], int] = {}
-    for start in range(0, len(wanted), 400):
-        chunk = wanted[start : start + 400]
-        models_in = {m for m, _ in chunk}
-        if len(models_in) == 1:
-            (mid,) = models_in
-            cond = (idempotency_keys.c.model_id == mid) & idempotency_keys.c.key.in_([k for _, k in chunk])
-        else:
-            cond = tuple_(idempotency_keys.c.model_id, idempotency_keys.c.key).in_(chunk)
-        for mid, key, seq in conn.execute(
-            select(idempotency_keys.c.model_id, idempotency_keys.c.key, idempotency_keys.c.seq).where(cond)
-        ):
-            found[(mid, key)] = seq
+    if not wanted:
+        return found
+    raw = _Raw(conn)
+    try:
+        for start in range(0, len(wanted), 400):
+            chunk = wanted[start : start + 400]
+            models_in = {m for m, _ in chunk}
+            if len(models_in) == 1:
+                (mid,) = models_in
+                marks = ",".join("?" * len(chunk))
+                for key, seq in raw.execute(
+                    f"SELECT key, seq FROM idempotency_keys WHERE model_id = ? AND key IN ({marks})",
+                    [mid, *(k for _, k in chunk)],
+                ):
+                    found[(mid, key)] = int(seq)
+            else:
+                marks = ",".join(["(?,?)"] * len(chunk))
+                flat = [v for pair in chunk for v in pair]
+                values = f"VALUES {marks}"
+                for mid, key, seq in raw.execute(
+                    "SELECT model_id, key, seq FROM idempotency_keys WHERE (model_id, key) IN "
+                    f"(SELECT * FROM ({values}) AS wanted)" if raw.postgres else
+                    f"SELECT model_id, key, seq FROM idempotency_keys WHERE (model_id, key) IN ({values})",
+                    flat,
+                ):
+                    found[(int(mid), key)] = int(seq)
+    finally:
+        raw.close()
     return found
+
+
+_INSERT_LOG = "INSERT INTO observations (model_id, seq, x, y, t, key, status, received) VALUES (?,?,?,?,?,?,?,?)"
+_INSERT_KEY = "INSERT INTO idempotency_keys (model_id, key, seq) VALUES (?,?,?)"
+_BUMP = "UPDATE models SET version = ?, seq = ? WHERE id = ?"
 
 
 def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) -> None:
@@ -208,54 +277,56 @@ def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) 
     ``expected_version``; a stale write is skipped (``accepted`` stays False).
     Several writes to one model chain in order (each expects the version the
     previous one sets). The rows of all accepted writes go in with one
-    multi-row insert per table and one batched version update, so a group of
-    many requests costs a handful of statements.
+    ``executemany`` per table on the driver's cursor (:class:`_Raw`) and one
+    batched version update, so a group of many requests costs a handful of
+    statements; checkpoints, drift events and epoch changes (rare) take the
+    SQLAlchemy queries in the same transaction.
     """
     if not writes:
         return
     ids = sorted({w.model_id for w in writes})  # sorted: concurrent groups lock rows in one order
     current: dict[int, int] = {}
-    for start in range(0, len(ids), 500):
-        chunk = ids[start : start + 500]
-        for mid, version in conn.execute(
-            select(models.c.id, models.c.version).where(models.c.id.in_(chunk)).order_by(models.c.id).with_for_update()
-        ):
-            current[mid] = version
-    log_rows: list[dict] = []
-    key_rows: list[dict] = []
-    final: dict[int, PendingWrite] = {}
-    for w in writes:
-        if current.get(w.model_id) != w.expected_version:
-            w.accepted = False
-            continue
-        mid = w.model_id
-        for r in w.rows:
-            log_rows.append({"model_id": mid, "seq": r.seq, "x": r.x, "y": r.y, "t": r.t, "key": r.key,
-                             "status": r.status, "received": r.received})
-            if r.key is not None:
-                key_rows.append({"model_id": mid, "key": r.key, "seq": r.seq})
-        current[mid] = w.new_version
-        final[mid] = w
-        w.accepted = True
-    if log_rows:
-        conn.execute(insert(observations), log_rows)
-    if key_rows:
-        conn.execute(insert(idempotency_keys), key_rows)
-    for w in writes:
-        if w.accepted and w.checkpoint is not None:
-            insert_checkpoint(conn, w.model_id, w.checkpoint, now)
-            if w.compact:
-                compact(conn, w.model_id)
-        if w.accepted and w.drift_events:
-            from .drift import insert_events  # drift.py imports this module
+    raw = _Raw(conn)
+    try:
+        lock = " ORDER BY id FOR UPDATE" if raw.postgres else ""  # SQLite: BEGIN IMMEDIATE holds the lock
+        for start in range(0, len(ids), 500):
+            chunk = ids[start : start + 500]
+            marks = ",".join("?" * len(chunk))
+            for mid, version in raw.execute(f"SELECT id, version FROM models WHERE id IN ({marks}){lock}", chunk):
+                current[int(mid)] = int(version)
+        log_rows: list[tuple] = []
+        key_rows: list[tuple] = []
+        final: dict[int, PendingWrite] = {}
+        for w in writes:
+            if current.get(w.model_id) != w.expected_version:
+                w.accepted = False
+                continue
+            mid = w.model_id
+            for r in w.rows:
+                log_rows.append((mid, r.seq, r.x, r.y, r.t, r.key, r.status, r.received))
+                if r.key is not None:
+                    key_rows.append((mid, r.key, r.seq))
+            current[mid] = w.new_version
+            final[mid] = w
+            w.accepted = True
+        if log_rows:
+            raw.executemany(_INSERT_LOG, log_rows)
+        if key_rows:
+            raw.executemany(_INSERT_KEY, key_rows)
+        for w in writes:
+            if w.accepted and w.checkpoint is not None:
+                insert_checkpoint(conn, w.model_id, w.checkpoint, now)
+                if w.compact:
+                    compact(conn, w.model_id)
+            if w.accepted and w.drift_events:
+                from .drift import insert_events  # drift.py imports this module
 
-            insert_events(conn, w.model_id, w.drift_events, now)
-    plain = [{"_id": w.model_id, "_v": w.new_version, "_s": w.new_seq} for w in final.values() if w.new_epoch is None]
-    if plain:
-        conn.execute(
-            update(models).where(models.c.id == bindparam("_id")).values(version=bindparam("_v"), seq=bindparam("_s")),
-            plain,
-        )
+                insert_events(conn, w.model_id, w.drift_events, now)
+        plain = [(w.new_version, w.new_seq, w.model_id) for w in final.values() if w.new_epoch is None]
+        if plain:
+            raw.executemany(_BUMP, plain)
+    finally:
+        raw.close()
     for w in final.values():
         if w.new_epoch is not None:
             bump_model(conn, w.model_id, w.new_version, w.new_seq, w.new_epoch)

@@ -49,10 +49,11 @@ function init(args)
   batch = tonumber(args[1]) or 1
   run = args[2] or "r"
   dim = tonumber(args[3]) or 8
-  models = tonumber(args[4]) or 0      -- 0: the URL's path; n: /v1/models/<prefix><i> with i uniform in 0..n-1
+  models = tonumber(args[4]) or 0      -- 0: the URL's path; n: /v1/models/<prefix><i>, i uniform in 0..n-1; -n: in turn
   prefix = args[5] or "u"
   method = args[6] or "POST"
   etag = args[7] or ""
+  start = tonumber(args[8]) or 0       -- warm-up: the model to begin with
   math.randomseed(os.time() + tid * 7919)
 end
 local function one(i)
@@ -66,6 +67,8 @@ function request()
   local path = wrk.path
   if models > 0 then
     path = "/v1/models/" .. prefix .. tostring(math.random(0, models - 1)) .. "/observations"
+  elseif models < 0 then  -- warm-up: every model in turn (thread 1 the even, thread 2 the odd ones)
+    path = "/v1/models/" .. prefix .. tostring((start + (counter - 1) * 2 + tid - 1) % -models) .. "/observations"
   end
   if method == "GET" then
     local headers = {}
@@ -243,8 +246,13 @@ def main() -> None:
         if "batch64" in only:
             bench.run(server, bare, "sqlite", "batch64", 16, batch=64)
         if "uniform" in only:
-            # warm-up: every model loaded once (checkpoint read) before the measured run
-            wrk(f"{server.url}/", bench.script, 16, max(3.0, args.duration), 1, "warm", 8, args.models, "u")
+            # warm-up: every model loaded once (checkpoint read) before the measured run; wrk's
+            # two threads post to the models in turn, each run carrying on where the last one ended
+            start = 0
+            while start < args.models:
+                done = wrk(f"{server.url}/", bench.script, 16, 2.0, 1, f"warm{start}", 8, -args.models, "u", "POST",
+                           "", start)
+                start += max(1, int(done["requests"] * 0.8))  # the two threads need not keep pace exactly
             for conns in (16, 64):
                 bench.run(server, bare, "sqlite", "uniform", conns, name="u0", models=args.models)
         if "get" in only:

@@ -139,6 +139,23 @@ def test_round_trip_property(data, cut):
     assert a.to_bytes() == b.to_bytes()
 
 
+@settings(max_examples=50, deadline=None)
+@given(st.lists(st.tuples(st.floats(-1e6, 1e6), st.one_of(st.none(), st.floats(1e-6, 1e6))),
+                max_size=80), st.integers(0, 80))
+def test_copy_continues_like_a_byte_round_trip_and_is_independent(data, cut):
+    a = DriftState(DriftConfig(warmup=3, forgetting_factor=0.97, effective_n=30.0))
+    for w, sg in data[:cut]:
+        a.observe(w, sg)
+    before = a.to_bytes()
+    c = a.copy()
+    b = DriftState.from_bytes(before)
+    for w, sg in data[cut:]:
+        c.observe(w, sg)
+        b.observe(w, sg)
+    assert c.to_bytes() == b.to_bytes()
+    assert a.to_bytes() == before  # the original did not move
+
+
 def test_from_bytes_rejects_garbage():
     with pytest.raises(ValueError):
         DriftState.from_bytes(b"nope")

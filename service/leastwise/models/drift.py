@@ -40,6 +40,7 @@ __all__ = ["ResidualMonitor", "drift_available", "DRIFT_DEFAULTS", "parse_drift"
 OK, WATCH, ALARM = "ok", "watch", "alarm"
 
 _MAGIC = b"LWRM"
+_FLOAT64 = np.dtype(np.float64)
 _HEAD = struct.Struct("<4sBBQQdddd")
 _LEN = struct.Struct("<I")
 
@@ -175,32 +176,34 @@ def a_priori(state: State, x: np.ndarray, y: float, t: float | None) -> Step | N
     """
     spec = state.spec
     d = spec.dim
-    if spec.half_life is None:
+    half_life = spec.half_life
+    if half_life is None:
         decay = float(spec.forgetting)
-    elif state.last_time is None or t is None:
-        decay = 1.0
     else:
-        decay = 2.0 ** (-(max(t, state.last_time) - state.last_time) / spec.half_life)
+        last = state.last_time
+        decay = 1.0 if last is None or t is None else 2.0 ** (-(max(t, last) - last) / half_life)
     if not decay > 0.0:
         return None
-    factor = state.factor
     dof = state.weight_sum - d
     if not dof > 0.0:
         return None
+    factor = state.factor
+    R = factor[:d, :d]
+    zc = factor[:d, d]
     rho = float(factor[d, d])
     rss = rho * rho
     if spec.ridge > 0.0 and state.prior_weight > 0.0:
-        w = dtrsv(factor[:d, :d], factor[:d, d])
+        w = dtrsv(R, zc)
         rss -= state.prior_weight * spec.ridge * float(np.dot(w, w))
     if not (rss > 0.0 and math.isfinite(rss)):
         return None
     sigma = math.sqrt(rss / dof)
-    u = dtrsv(factor[:d, :d], np.asarray(x, dtype=np.float64), trans=1)
+    u = dtrsv(R, x if type(x) is np.ndarray and x.dtype == _FLOAT64 else np.asarray(x, dtype=np.float64), trans=1)
     nu = float(dnrm2(u))
     lev = nu * nu / decay
     if not lev <= 1e24:
         return None
-    prediction = float(np.dot(u, factor[:d, d]))
+    prediction = float(np.dot(u, zc))
     residual = float(y) - prediction
     recursive = residual / math.sqrt(1.0 + lev)
     z = recursive / sigma
@@ -278,7 +281,9 @@ class ResidualMonitor:
     # -- the hot path ------------------------------------------------------------
     def observe(self, step: Step, seq: int | None = None, state: State | None = None) -> dict[str, Any] | None:
         """Feed one applied engine step (in log order); returns the status change it caused, if any."""
-        self.seq = seq = self.seq + 1 if seq is None else seq
+        if seq is None:
+            seq = self.seq + 1
+        self.seq = seq
         z = step.standardized_residual
         w = step.recursive_residual
         if z is None:
@@ -292,14 +297,14 @@ class ResidualMonitor:
                 self.max_abs = abs(z)
         det = self.detector
         if w is None:
-            det.observe(math.nan, None, seq)
-        elif z is None and det.n_used < det.config.warmup:
+            dsig = det.observe(math.nan, None, seq)
+        elif z is None:
             # sigma not yet estimable (n <= d): within the warm-up only the BDE sums use the residual
             # (the z-detectors start after it), so W covers every recursive residual like statsmodels
-            det.observe(w, 1.0, seq)
+            dsig = det.observe(w, 1.0 if det.n_used < det.config.warmup else None, seq)
         else:
             # the engine gives z = w / sigma_before; recover sigma (any positive value when w == 0)
-            det.observe(w, (w / z) if (z is not None and z != 0.0) else (1.0 if z is not None else None), seq)
+            dsig = det.observe(w, w / z if z != 0.0 else 1.0, seq)
         if self.gated_run:
             self.gated_run = 0
             self.gated_run_since = -1
@@ -307,7 +312,18 @@ class ResidualMonitor:
             self.roll_decay *= step.decay
             if self.roll_decay <= 0.5 or self.lag_factor is None:
                 self._roll(state, seq)
-        return self._changed(seq)
+        # _signature() with gated_run == 0, from the detector's signature at hand
+        if self.gated_alarm is not None:
+            g = 6
+        elif 0 >= self.settings["gate_run"]:
+            g = 4
+        else:
+            g = 0
+        e = self.erosion
+        sig = dsig << 4 | g | (1 if (e is not None and e.get("eroding")) else 0)
+        if sig == self._sig:
+            return None
+        return self._changed(seq, sig)
 
     def gate(self, state: State, x: np.ndarray, y: float, t: float | None) -> Step | None:
         """The a-priori step when the gate rejects ``(x, y)``; ``None`` to apply it."""
@@ -335,10 +351,16 @@ class ResidualMonitor:
 
     def advance(self, state: State, x: np.ndarray, y: float, t: float | None, seq: int
                 ) -> tuple[Step, str, dict[str, Any] | None]:
-        """Gate check, then update ``state`` and feed the step: ``(step, "applied" | "gated", change)``."""
-        gated = self.gate(state, x, y, t) if self.settings.get("gate") is not None else None
-        if gated is not None:
-            return gated, "gated", self.record_gated(gated, seq)
+        """Gate check, then update ``state`` and feed the step: ``(step, "applied" | "gated", change)``.
+
+        ``x`` may be anything the engine takes; a 1-d float64 array of the model's dimension
+        (what :func:`leastwise.models.inputs.parse_observations` gives) skips the engine's checks.
+        """
+        g = self.settings.get("gate")
+        if g is not None and self.detector.n_used >= self.detector.config.warmup:  # self.gate(), inline
+            gated = a_priori(state, x, y, t)
+            if gated is not None and abs(gated.standardized_residual) > g:
+                return gated, "gated", self.record_gated(gated, seq)
         step = state.update(x, y, t)
         return step, "applied", self.observe(step, seq, state)
 
@@ -358,11 +380,19 @@ class ResidualMonitor:
         e = 1 if (self.erosion is not None and self.erosion.get("eroding")) else 0
         return self.detector.signature() << 4 | g << 1 | e
 
-    def _changed(self, seq: int) -> dict[str, Any] | None:
-        sig = self._signature()
+    def _changed(self, seq: int, sig: int | None = None) -> dict[str, Any] | None:
+        """The status change at ``seq``, if any (``sig``: :meth:`_signature`, when the caller has it).
+
+        The status is built only when the signature moved and the set of (statistic, level)
+        pairs really differs from the one last recorded (:meth:`_reason_keys`, cheap).
+        """
+        if sig is None:
+            sig = self._signature()
         if sig == self._sig:
             return None
         self._sig = sig
+        if self._reason_keys() == self._keys:
+            return None  # same keys, so the same level and no new alarm: what the full check below concludes
         st = self.status()
         level = st["status"]
         keys = frozenset((r["statistic"], r["level"]) for r in st["reasons"])
@@ -376,6 +406,19 @@ class ResidualMonitor:
         change = {"status": level, "previous": previous, "seq": seq, "reasons": st["reasons"]}
         self.events.append(_event(change))
         return change
+
+    def _reason_keys(self) -> frozenset:
+        """``{(statistic, level)}`` of :meth:`reasons`, without building them (same conditions)."""
+        keys = self.detector.reason_keys()
+        run = self.settings["gate_run"]
+        if self.gated_alarm is not None or self.gated_run >= run:
+            keys = keys | {("gated_run", ALARM)}
+        elif self.gated_run:
+            keys = keys | {("gated_run", WATCH)}
+        e = self.erosion
+        if e is not None and e.get("eroding"):
+            keys = keys | {("excitation_erosion", WATCH)}
+        return keys
 
     def _refresh(self) -> None:
         """Recompute the derived status memo (after loading or replacing parts)."""
@@ -668,7 +711,7 @@ class ResidualMonitor:
         new = ResidualMonitor.__new__(ResidualMonitor)
         for slot in ResidualMonitor.__slots__:
             setattr(new, slot, getattr(self, slot))
-        new.detector = DriftState.from_bytes(self.detector.to_bytes())
+        new.detector = self.detector.copy()
         new.settings = dict(self.settings)
         new.reference = dict(self.reference)
         new.events = list(self.events)  # chained prepares (group commit) keep the events not yet written

@@ -168,7 +168,7 @@ class _Tip:
     write: PendingWrite | None = None
 
 
-def _x_bytes(row: list[float]) -> bytes:
+def _x_bytes(row: np.ndarray) -> bytes:
     return np.asarray(row, dtype="<f8").tobytes()
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 import ipaddress
 import logging
 import socket
@@ -82,6 +83,10 @@ def run(settings: Settings) -> None:
     check_host(settings.host, settings.database)
     setup_logging(settings.log_level)
     app = create_app(settings)
+    # Everything built so far (the framework, the schemas, the routes) lives as long as the process:
+    # move it out of the collector's sight, so full collections stay short under load (p99).
+    gc.collect()
+    gc.freeze()
     log.info("serving", extra={"host": settings.host, "port": settings.port, "database": mask_url(settings.database),
                                "checkpoint_every": settings.checkpoint_every, "compact_log": settings.compact_log,
                                "group_commit": settings.group_commit, "threads": settings.threads})

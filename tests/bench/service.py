@@ -140,22 +140,42 @@ def features(d: int) -> dict:
     return {"features": [f"f{i}" for i in range(d)], "intercept": False}
 
 
+def warm_rows(d: int) -> list[dict]:
+    """Observations that take a new model past its start-up phase: while fewer than d observations
+    determine the coefficients, every update and answer takes the engine's minimum-norm (SVD) path."""
+    return [{"x": [((i * 7 + j * 3) % 11) * 0.5 + (i == j) for j in range(d)], "y": i * 0.1} for i in range(2 * d + 8)]
+
+
 def create_many(url: str, prefix: str, count: int, d: int) -> None:
-    """``count`` models created in one transaction (10,000 PUTs would take one fsync each)."""
+    """``count`` models created in one transaction (10,000 PUTs would take one fsync each), each already
+    past its start-up phase like the one-model runs: the same warm-up rows in its log and its checkpoint."""
+    import numpy as np
+    from sqlalchemy import insert
+
     from leastwise.engine import State
     from leastwise.models.config import ModelConfig
     from leastwise.models.drift import ResidualMonitor
     from leastwise.store import CheckpointRow, Store
     from leastwise.store import queries as q
+    from leastwise.store.tables import observations
 
     config = ModelConfig.parse(features(d))
-    cp = CheckpointRow(1, 0, State(config.spec()).to_bytes(), ResidualMonitor(config.forgetting).to_bytes())
+    state, monitor = State(config.spec()), ResidualMonitor.for_model(config)
+    rows = warm_rows(d)
+    for seq, r in enumerate(rows, start=1):
+        monitor.advance(state, np.asarray(r["x"], dtype=np.float64), float(r["y"]), None, seq)
+    monitor.take_events()
+    cp = CheckpointRow(1, len(rows), state.to_bytes(), monitor.to_bytes())
     store = Store.open(url)
     try:
         with store.write() as conn:
             now = time.time()
             for i in range(count):
-                q.insert_model(conn, f"{prefix}{i}", config.to_json(), now, cp)
+                model = q.insert_model(conn, f"{prefix}{i}", config.to_json(), now, cp)
+                conn.execute(insert(observations), [
+                    {"model_id": model.id, "seq": seq, "x": np.asarray(r["x"], dtype="<f8").tobytes(), "y": r["y"],
+                     "t": None, "key": None, "status": "applied", "received": now}
+                    for seq, r in enumerate(rows, start=1)])
     finally:
         store.close()
 
@@ -193,11 +213,7 @@ class Bench:
         if name is None:
             with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
                 http.put(f"/v1/models/{tag}", json=features(d)).raise_for_status()
-                # past the start-up phase first: while fewer than d observations determine the
-                # coefficients, every update and answer takes the engine's minimum-norm (SVD) path
-                warm = [{"x": [((i * 7 + j * 3) % 11) * 0.5 + (i == j) for j in range(d)], "y": i * 0.1}
-                        for i in range(2 * d + 8)]
-                http.post(f"/v1/models/{tag}/observations", json={"observations": warm}).raise_for_status()
+                http.post(f"/v1/models/{tag}/observations", json={"observations": warm_rows(d)}).raise_for_status()
         svc = wrk(f"{server.url}{path}", self.script, conns, self.args.duration, batch, tag, d, models, "u",
                   method, etag)
         ceil = self.ceiling(bare, "get" if method == "GET" else "post", conns, batch, d)

@@ -20,7 +20,7 @@ __all__ = ["create_app", "build_registry"]
 
 def build_registry(settings: Settings) -> Registry:
     """Open the database (running migrations) and make the registry."""
-    store = Store.open(settings.database, pool_size=settings.pool_size)
+    store = Store.open(settings.database, pool_size=settings.pool_size, background_checkpoints=True)
     return Registry(store, checkpoint_every=settings.checkpoint_every, compact_log=settings.compact_log,
                     max_batch=settings.max_batch, group_commit=settings.group_commit, max_group=settings.max_group)
 

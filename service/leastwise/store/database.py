@@ -10,12 +10,16 @@ several processes may start at once.
 
 from __future__ import annotations
 
+import logging
+import threading
 from pathlib import Path
 
 from sqlalchemy import create_engine, event, text
 from sqlalchemy.engine import Connection, Engine, make_url
 
-__all__ = ["open_engine", "migrate", "is_sqlite", "WRITE"]
+__all__ = ["open_engine", "migrate", "is_sqlite", "WRITE", "WalCheckpointer"]
+
+log = logging.getLogger("leastwise.store")
 
 #: execution option marking a connection whose transaction will write
 WRITE = "leastwise_write"
@@ -28,8 +32,12 @@ def is_sqlite(engine: Engine) -> bool:
     return engine.dialect.name == "sqlite"
 
 
-def open_engine(url: str, *, pool_size: int = 8) -> Engine:
-    """A SQLAlchemy engine for ``url`` (``sqlite:///path`` or ``postgresql+psycopg://...``)."""
+def open_engine(url: str, *, pool_size: int = 8, wal_autocheckpoint: bool = True) -> Engine:
+    """A SQLAlchemy engine for ``url`` (``sqlite:///path`` or ``postgresql+psycopg://...``).
+
+    ``wal_autocheckpoint=False`` (SQLite): commits never copy the WAL back
+    into the database file themselves; a :class:`WalCheckpointer` must.
+    """
     parsed = make_url(url)
     if parsed.get_backend_name() == "sqlite":
         database = parsed.database or ""
@@ -41,14 +49,14 @@ def open_engine(url: str, *, pool_size: int = 8) -> Engine:
             max_overflow=32,
             connect_args={"check_same_thread": False, "timeout": 30.0},
         )
-        _sqlite_hooks(engine)
+        _sqlite_hooks(engine, wal_autocheckpoint)
         return engine
     if parsed.get_backend_name() == "postgresql":
         return create_engine(parsed, pool_size=pool_size, max_overflow=32, pool_pre_ping=True)
     raise ValueError(f"unsupported database {parsed.get_backend_name()!r}: use sqlite:/// or postgresql+psycopg://")
 
 
-def _sqlite_hooks(engine: Engine) -> None:
+def _sqlite_hooks(engine: Engine, wal_autocheckpoint: bool = True) -> None:
     @event.listens_for(engine, "connect")
     def _on_connect(dbapi_connection, _record) -> None:  # noqa: ANN001
         dbapi_connection.isolation_level = None  # transactions are begun below, explicitly
@@ -57,11 +65,52 @@ def _sqlite_hooks(engine: Engine) -> None:
         cursor.execute("PRAGMA synchronous=FULL")
         cursor.execute("PRAGMA foreign_keys=ON")
         cursor.execute("PRAGMA busy_timeout=30000")
+        if not wal_autocheckpoint:
+            cursor.execute("PRAGMA wal_autocheckpoint=0")
         cursor.close()
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn: Connection) -> None:
         conn.exec_driver_sql("BEGIN IMMEDIATE" if conn.get_execution_options().get(WRITE) else "BEGIN")
+
+
+class WalCheckpointer:
+    """Copies the SQLite write-ahead log back into the database file from a thread of its own.
+
+    By default SQLite does this inside the commit that pushes the WAL past
+    1000 pages, so that one request waits for a second round of writes and
+    fsyncs of the database file (and with many models a commit dirties many
+    pages). Here a PASSIVE checkpoint runs every ``interval`` seconds instead:
+    it never blocks writers or readers, commits only append to the WAL and
+    fsync it, so durability is unchanged (a restart replays whatever the WAL
+    still holds).
+    """
+
+    def __init__(self, engine: Engine, interval: float = 0.5) -> None:
+        self.engine = engine
+        self.interval = interval
+        self.runs = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="leastwise-wal-checkpoint", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        while not self._stop.wait(self.interval):
+            self.checkpoint()
+
+    def checkpoint(self, mode: str = "PASSIVE") -> None:
+        try:
+            with self.engine.connect() as conn:
+                conn.exec_driver_sql(f"PRAGMA wal_checkpoint({mode})").fetchall()
+                conn.commit()
+            self.runs += 1
+        except Exception:  # noqa: BLE001 - retried at the next interval; the WAL keeps every commit meanwhile
+            log.warning("WAL checkpoint failed", exc_info=True)
+
+    def close(self) -> None:
+        self._stop.set()
+        self._thread.join(5.0)
+        self.checkpoint("TRUNCATE")  # leave a short WAL behind
 
 
 def alembic_config():  # -> alembic.config.Config (imported lazily: alembic is only needed here)

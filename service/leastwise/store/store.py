@@ -7,7 +7,7 @@ from contextlib import contextmanager
 
 from sqlalchemy.engine import Connection, Engine
 
-from .database import WRITE, migrate, open_engine
+from .database import WRITE, WalCheckpointer, migrate, open_engine
 from .queries import MODEL_VERSION
 
 __all__ = ["Store"]
@@ -16,19 +16,24 @@ __all__ = ["Store"]
 class Store:
     """Database access for the registry. ``read()`` / ``write()`` yield a connection inside a transaction."""
 
-    def __init__(self, engine: Engine) -> None:
+    def __init__(self, engine: Engine, checkpointer: WalCheckpointer | None = None) -> None:
         self.engine = engine
+        self.checkpointer = checkpointer
         compiled = MODEL_VERSION.compile(dialect=engine.dialect)
         self._version_sql = str(compiled)
         self._version_positional = bool(compiled.positiontup)
         self._dbapi_error = engine.dialect.loaded_dbapi.Error
 
     @classmethod
-    def open(cls, url: str, *, pool_size: int = 8, run_migrations: bool = True) -> "Store":
-        engine = open_engine(url, pool_size=pool_size)
+    def open(cls, url: str, *, pool_size: int = 8, run_migrations: bool = True,
+             background_checkpoints: bool = False) -> "Store":
+        """Open (and migrate) the database; ``background_checkpoints``: SQLite WAL checkpoints off the
+        commit path (the service's setting, see :class:`WalCheckpointer`)."""
+        sqlite = url.startswith("sqlite")
+        engine = open_engine(url, pool_size=pool_size, wal_autocheckpoint=not (background_checkpoints and sqlite))
         if run_migrations:
             migrate(engine)
-        return cls(engine)
+        return cls(engine, WalCheckpointer(engine) if background_checkpoints and sqlite else None)
 
     @property
     def dialect(self) -> str:
@@ -80,4 +85,7 @@ class Store:
                 yield conn
 
     def close(self) -> None:
+        checkpointer, self.checkpointer = self.checkpointer, None
+        if checkpointer is not None:
+            checkpointer.close()
         self.engine.dispose()

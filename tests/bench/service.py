@@ -96,7 +96,8 @@ BARE = r'''
 import orjson, uvicorn
 from fastapi import FastAPI, Request
 from starlette.responses import Response
-app = FastAPI()
+from leastwise.api.app import framework_options
+app = FastAPI(**framework_options())  # the service's framework settings
 STATE = orjson.dumps({"name": "m", "config": {"features": ["f%d" % i for i in range(8)], "intercept": False,
     "forgetting": 1.0, "half_life": None, "ridge": 0.0}, "version": 123, "created": "2026-01-01T00:00:00Z",
     "n": 122, "effective_n": 122.0, "identifiable": True, "rank": 8,

@@ -11,6 +11,7 @@ from typing import Any
 
 import orjson
 from fastapi import Request
+from starlette.requests import ClientDisconnect
 
 from leastwise.models import FieldError
 
@@ -64,15 +65,21 @@ async def _receive(request: Request, limit: int) -> bytes:
     total = 0
     try:
         async with asyncio.timeout(seconds):
-            async for chunk in request.stream():
+            while True:  # the ASGI messages directly: Request.stream() adds a generator per request
+                message = await request.receive()
+                if message["type"] == "http.disconnect":
+                    raise ClientDisconnect()
+                chunk = message.get("body", b"")
                 total += len(chunk)
                 if total > limit:
                     raise Problem(413, "content-too-large", f"the body exceeds the limit of {limit} bytes")
                 chunks.append(chunk)
+                if not message.get("more_body", False):
+                    break
     except TimeoutError:
         raise Problem(408, "request-timeout", f"the body did not arrive within {seconds} s",
                       title="Request timeout", headers={"Connection": "close"}) from None
-    return b"".join(chunks)
+    return chunks[0] if len(chunks) == 1 else b"".join(chunks)
 
 
 class _Bad:

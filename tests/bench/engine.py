@@ -2,7 +2,8 @@
 
 Not a test: run ``python tests/bench/engine.py``. Figures are ratios measured in
 one run (interleaved repeats, best of each) because the machines are shared.
-Prints one JSON line per dimension; the last line is d = 8 with the targets.
+Prints one JSON line per dimension (d = 8 with the targets), one for the drift
+monitor, and one per dimension for the read-time solve (``solution_us``).
 """
 
 from __future__ import annotations
@@ -125,6 +126,48 @@ def measure_drift(d: int = 8, repeat: int = 7) -> dict:
             "drift_ratio": round(drift / upd, 3), "targets": {"drift_ratio": "<= 0.3"}}
 
 
+def measure_solution(d: int, repeat: int = 9) -> dict:
+    """Cost of one read-time solve ``State.solution()`` (coefficients, rcond, refinement, sigma).
+
+    ``solution_us``: a state read again with its cached Solution dropped (what a fresh
+    read of an unchanged state costs). ``solution_after_update_us``: the first read of
+    a copy that took one more observation (the service's pattern: copy, update, read).
+    Best of interleaved repeats, like the figures above.
+    """
+    rng = np.random.default_rng(200 + d)
+    n = 4 * d + 13  # a partly filled Gram buffer (13 rows pending)
+    X = rng.normal(size=(n + 1, d))
+    Y = X @ rng.normal(size=d) + rng.normal(size=n + 1)
+    state = State(Spec(dim=d, forgetting=0.999))
+    state.update_many(X[:n], Y[:n])
+    state.solution()
+    number = 2000 if d <= 32 else 100
+
+    def run_fresh(count: int) -> None:
+        for _ in range(count):
+            state._solution = None
+            state.solution()
+
+    def updated_copies() -> list:
+        out = []
+        for _ in range(number):
+            c = state.copy()
+            c.update(X[n], float(Y[n]))
+            out.append(c)
+        return out
+
+    fresh, after = float("inf"), float("inf")
+    for _ in range(repeat):
+        fresh = min(fresh, best_time(run_fresh, number, 1))
+        copies = updated_copies()
+        start = time.perf_counter()
+        for c in copies:
+            c.solution()
+        after = min(after, (time.perf_counter() - start) / number)
+    return {"d": d, "solution_us": round(fresh * 1e6, 2), "solution_after_update_us": round(after * 1e6, 2),
+            "refined": bool(state.solution().refined)}
+
+
 def main() -> None:
     quick = "--quick" in sys.argv
     rows = 100_000 if quick else 1_000_000
@@ -135,6 +178,8 @@ def main() -> None:
     result["targets"] = {"update_ratio": "<= 1.5", "block_rows_per_s": ">= 5e6", "block_vs_lstsq": "<= 1.0"}
     print(json.dumps(result))
     print(json.dumps(measure_drift(8) | info))
+    for d in (8, 32, 64, 128):
+        print(json.dumps(measure_solution(d, 5 if quick else 9) | info))
 
 
 if __name__ == "__main__":

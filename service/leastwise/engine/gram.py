@@ -24,17 +24,31 @@ accumulated in extended precision, whose error is of order
 would not converge (``kappa(A) u_d d >= 1e-4``), the factor's solution is used
 as it is; so is it after a block backfill, whose Gram contribution is
 accumulated in double precision for speed.
+
+Read-time cost (``State.solution``): the fold of the buffered rows and its
+double-double split are memoised per state content (:class:`FoldMemo`), the
+one-step refinement used at moderate condition skips every operation whose
+value is known in advance (:func:`_refine_once`), and long rows are summed by
+error-free extraction instead of ``math.fsum`` (:func:`exact_row_sums`); each
+gives the same bits as the plain computation (``tests/engine/test_solution_fast.py``
+keeps the previous implementation to compare against).
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
+from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy.linalg.blas import dnrm2 as _nrm2
 from scipy.linalg.lapack import dtrtrs
 
-__all__ = ["FOLD_ROWS", "EXTENDED", "new_gram", "fold", "refine", "split_pairs", "join_pairs"]
+__all__ = [
+    "FOLD_ROWS", "EXTENDED", "new_gram", "fold", "refine", "split_pairs", "join_pairs",
+    "GramSplit", "split_gram", "FoldMemo", "fold_memo", "accumulate_rows", "exact_row_sums",
+]
 
 #: Rows buffered before they are folded into the Gram matrix.
 FOLD_ROWS = 32
@@ -47,6 +61,12 @@ DOUBLE_ROUNDOFF = float(np.finfo(np.float64).eps) / 2.0
 #: Refine only while kappa(A) * u_d stays below this (fast, certain convergence).
 CONVERGENCE_LIMIT = 1e-4
 REFINE_STEPS = 3
+
+#: Dekker's splitting constant 2^27 + 1 (53-bit doubles into 26-bit halves).
+_SPLITTER = 134217729.0
+#: Fast paths run only while every operand is at most this (no product, split or sum can overflow).
+_OPERAND_LIMIT = 1e290
+_SUM_LIMIT = 1e300
 
 
 def new_gram(dim: int, ridge: float) -> NDArray[np.longdouble]:
@@ -65,9 +85,120 @@ def fold(gram: NDArray[np.longdouble], rows: NDArray[np.float64]) -> NDArray[np.
     return gram + r.T @ r
 
 
+def accumulate_rows(partial: NDArray[np.longdouble] | None, rows: NDArray[np.float64]) -> NDArray[np.longdouble]:
+    """``S + sum_i r_i r_i^T`` in extended precision, one row after another (``S = 0`` when ``partial`` is None).
+
+    Each entry is one running extended sum over the rows in order, starting from 0: exactly
+    the order of numpy's long double ``r.T @ r`` (which has no BLAS: one accumulator per
+    entry, rows in order). So the sum over ``k`` rows may be continued from the sum over
+    the first ``j`` and still equals :func:`fold`'s product bit for bit
+    (``tests/engine/test_solution_fast.py`` checks it).
+    """
+    if partial is None:
+        if rows.shape[0] > 1:
+            r = rows.astype(EXTENDED)
+            return r.T @ r  # from 0, the same order
+        partial = np.zeros((rows.shape[1], rows.shape[1]), dtype=EXTENDED)
+    for row in rows:
+        # The double values widen exactly; each product is rounded once, in extended precision.
+        partial = partial + np.multiply.outer(row, row, dtype=EXTENDED)
+    return partial
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class GramSplit:
+    """The folded Gram matrix in the double-double form the refinement reads (never modified).
+
+    ``pairs`` is :func:`split_pairs` of it (``hi = double(G)``, ``lo = double(G - hi)``
+    in one ``(2, d+1, d+1)`` block laid out as ``np.stack`` does, so BLAS sees the same
+    operands as before); ``bound`` is ``||hi[:d, :]||_F >= max |entry|`` (NaN if an entry is). While
+    ``bound <= _OPERAND_LIMIT``: ``a3t`` holds ``[A_hi, hh, hl]^T`` (``(3, d, d)``: the
+    transposes of ``A_hi`` and of Dekker's halves of it, the first factor of each product
+    of :func:`_refine_once`), and ``neg_b`` is ``[-b_hi, -b_lo]``; otherwise both are None.
+    """
+
+    pairs: NDArray[np.float64]
+    bound: float
+    a3t: NDArray[np.float64] | None
+    neg_b: NDArray[np.float64] | None
+
+
+def split_gram(folded: NDArray[np.longdouble]) -> GramSplit:
+    """Split ``G`` once for :func:`refine`: :func:`split_pairs` and the pieces of ``A_hi`` and ``b``."""
+    m = folded.shape[0]
+    d = m - 1
+    pairs = np.empty((2, m, m))
+    hi = pairs[0]
+    hi[...] = folded  # the same rounding cast as astype(float64)
+    np.subtract(folded, hi, out=pairs[1])  # in extended precision (hi widened exactly), then rounded: exact
+    # ||.||_2 >= max |entry|: an upper bound is all the guards need. dnrm2 scales (no
+    # overflow) and is NaN or infinite when an entry is (the input checks rely on it too).
+    bound = float(_nrm2(hi[:d].ravel()))
+    if not bound <= _OPERAND_LIMIT:
+        pairs.flags.writeable = False
+        return GramSplit(pairs, bound, None, None)
+    a3t = np.empty((3, d, d))
+    a3t[0] = hi[:d, :d].T
+    c = _SPLITTER * a3t[0]  # _split, transposed
+    np.subtract(c, c - a3t[0], out=a3t[1])
+    np.subtract(a3t[0], a3t[1], out=a3t[2])
+    # Into a new array: numpy 2.4's float64 negative misreads an input of stride 64 bytes
+    # (d = 7 here) when given a strided out=.
+    neg_b = -pairs[:, :d, d]
+    for a in (pairs, a3t, neg_b):  # shared by every copy of the state: never written
+        a.flags.writeable = False
+    return GramSplit(pairs, bound, a3t, neg_b)
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class FoldMemo:
+    """A state's read-time fold (:func:`fold` of its buffered rows) and its split, kept for later reads.
+
+    Valid for any state whose Gram matrix has the bytes ``gram_key`` and whose first ``k``
+    buffered rows have the bytes ``rows_key``: :func:`fold_memo` compares both on every
+    use, so copies of a state may share one memo and an in-place change of the Gram
+    matrix (block backfill, renormalisation, forgetting everything) cannot go unnoticed.
+    Nothing in it is ever modified. ``partial`` is ``sum r_i r_i^T`` over the ``k`` rows
+    (:func:`accumulate_rows`; None when ``k = 0``).
+    """
+
+    gram_key: bytes
+    rows_key: bytes
+    k: int
+    partial: NDArray[np.longdouble] | None
+    split: GramSplit
+
+
+def fold_memo(
+    memo: FoldMemo | None, gram: NDArray[np.longdouble], pending: NDArray[np.float64], k: int,
+) -> FoldMemo:
+    """The memo for ``fold(gram, pending[:k])``: ``memo`` itself when it still matches, else a new one.
+
+    When the Gram matrix is unchanged and ``memo`` covers a prefix of the rows, only the
+    newer rows are added to its partial sum (one extended outer product each) unless
+    a fresh product of all ``k`` is cheaper; either way the same bits as :func:`fold`.
+    """
+    gram_key = gram.tobytes()
+    partial = None
+    start = 0
+    if memo is not None and memo.k <= k and memo.gram_key == gram_key and pending[:memo.k].tobytes() == memo.rows_key:
+        if memo.k == k:
+            return memo
+        m2 = gram.shape[0] ** 2
+        # Continuing costs ~2x the product per row (measured); restart when that is cheaper.
+        if (k - memo.k) * (360 + m2) <= k * (35 + m2 // 2):
+            partial, start = memo.partial, memo.k
+    if k > start:
+        partial = accumulate_rows(partial, pending[start:k])
+        partial.flags.writeable = False
+    folded = gram if partial is None else gram + partial
+    return FoldMemo(gram_key, pending[:k].tobytes(), k, partial, split_gram(folded))
+
+
 def refine(
     R: NDArray[np.float64], rcond: float, w0: NDArray[np.float64],
-    gram: NDArray[np.longdouble], exact_sums: bool,
+    gram: NDArray[np.longdouble] | GramSplit | Callable[[], GramSplit],
+    exact_sums: bool | Callable[[], bool],
 ) -> tuple[NDArray[np.float64], bool]:
     """Refine ``w0`` against the extended Gram matrix when that cannot lose accuracy.
 
@@ -84,8 +215,13 @@ def refine(
     ``kappa^2 u_d d < CONVERGENCE_LIMIT``. Otherwise ``w0`` is returned.
 
     Each residual ``b - A w`` is evaluated exactly rounded from the double-double
-    split of ``G`` and of the iterate (Dekker's product, ``math.fsum``), so the
-    fixed point is the solution of the normal equations as held in ``G``.
+    split of ``G`` and of the iterate (Dekker's product, exactly rounded row sums:
+    :func:`exact_row_sums`), so the fixed point is the solution of the normal
+    equations as held in ``G``.
+
+    ``gram`` is the extended matrix, its :func:`split_gram`, or a function giving the
+    split; ``exact_sums`` a flag or a function giving it. Functions are called only
+    when the condition test passes (reads of ill-conditioned states split nothing).
     """
     d = w0.shape[0]
     if EXTENDED_ROUNDOFF >= DOUBLE_ROUNDOFF:
@@ -96,18 +232,123 @@ def refine(
     kappa_a = kappa * kappa
     if kappa_a * DOUBLE_ROUNDOFF * d > CONVERGENCE_LIMIT:
         return w0, False
-    if not (exact_sums or kappa <= DOUBLE_ROUNDOFF / EXTENDED_ROUNDOFF):
+    if not (kappa <= DOUBLE_ROUNDOFF / EXTENDED_ROUNDOFF or (exact_sums() if callable(exact_sums) else exact_sums)):
         return w0, False
-    pairs = split_pairs(gram)
+    if isinstance(gram, GramSplit):
+        split = gram
+    elif callable(gram):
+        split = gram()
+    else:
+        split = split_gram(gram)
+    # One step already reaches the normal-equations limit when the contraction
+    # kappa(A) u_d is tiny; more are needed only close to CONVERGENCE_LIMIT.
+    if kappa_a * DOUBLE_ROUNDOFF * d < 1e-8:
+        if split.a3t is not None:
+            done = _refine_once(R, w0, split)
+            if done is not None:
+                return done
+        return _refine_steps(R, w0, split, 1)
+    return _refine_steps(R, w0, split, REFINE_STEPS)
+
+
+#: Up to this d, :func:`_refine_once` forms all products in one call (9 d^2 values); beyond, in place.
+_ONE_CALL_MAX_DIM = 24
+
+
+def _refine_once(
+    R: NDArray[np.float64], w0: NDArray[np.float64], split: GramSplit,
+) -> tuple[NDArray[np.float64], bool] | None:
+    """One refinement step from ``w_lo = 0``, the common case: the same bits as :func:`_refine_steps` with one step.
+
+    What :func:`_refine_steps` computes that is known in advance is left out:
+
+    * ``A_hi w_lo`` with ``w_lo = 0`` is (signed) zero, so the rounded cross term is ``A_lo w0`` alone;
+    * the residual rows are built negated, ``[-b_hi, -b_lo, A_lo w0, p, e]``, as the columns
+      of one block (contiguous operands, few calls): rounding to nearest is odd-symmetric,
+      so their exact sums are ``-r`` (``+0`` for 0, as for ``r``), and the two triangular
+      solves give ``-step`` (a zero may differ in sign only);
+    * after one step the two-sum ``(total, err)`` of ``w0 + step`` is error-free (Knuth,
+      TAOCP vol. 2, 4.2.2, Thm B), so ``total + (0 + err) = fl(w0 + step) + 0``
+      (``+ 0.0`` turns ``-0`` into ``+0`` as that sum does).
+
+    ``p`` and ``e`` are Dekker's two-product ``p + e = a_hi w0`` with ``e`` evaluated in
+    :func:`_exact_residual`'s order. ``None`` (the caller takes the general path) when a
+    value is not finite or so large that a product, split or row sum could overflow: no
+    NaN or infinity and no numpy warning can occur here, so no ``errstate`` is needed.
+    """
+    d = w0.shape[0]
+    listed = w0.tolist()
+    wmax = max(map(abs, listed))
+    bound = split.bound
+    # sum() is NaN or infinite if any entry is (or, harmlessly, on overflow).
+    if not (math.isfinite(sum(listed)) and wmax <= _OPERAND_LIMIT
+            and bound * wmax * (4 * d + 8) + 4.0 * bound <= _SUM_LIMIT):
+        return None
+    halves = np.empty((3, d, 1))  # [w0, hh, hl] as columns: the second factor of each product
+    w_col = halves[0]
+    w_col[:, 0] = w0
+    c = _SPLITTER * w_col  # Dekker's split of w0
+    np.subtract(c, c - w_col, out=halves[1])
+    np.subtract(w_col, halves[1], out=halves[2])
+    a3t = split.a3t
+    if d <= _ONE_CALL_MAX_DIM:
+        block = np.empty((3 + 9 * d, d))  # column i: the negated residual row i, then scratch
+        prods = block[3:].reshape(3, 3, d, d)
+        # prods[i, j] = (piece i of a_hi) * (piece j of w0), transposed
+        np.multiply(a3t[:, None], halves[None, :], out=prods)
+        p = prods[0, 0]
+        e = prods[0, 1]  # a_hi * hh is not needed: e takes its place, next to p
+        np.subtract(prods[1, 1], p, out=e)
+        e += prods[1, 2]
+        e += prods[2, 1]
+        e += prods[2, 2]
+    else:
+        block = np.empty((3 + 2 * d, d))
+        p = block[3:3 + d]
+        e = block[3 + d:]
+        np.multiply(a3t[0], w_col, out=p)
+        np.multiply(a3t[1], halves[1], out=e)
+        e -= p
+        tmp = a3t[1] * halves[2]
+        e += tmp
+        np.multiply(a3t[2], halves[1], out=tmp)
+        e += tmp
+        np.multiply(a3t[2], halves[2], out=tmp)
+        e += tmp
+    block[:2] = split.neg_b
+    block[2] = split.pairs[1][:d, :d] @ w0
+    neg_resid = exact_row_sums(block[:3 + 2 * d].T, overwrite=True)
+    v, _ = dtrtrs(R, neg_resid, lower=0, trans=1)
+    neg_step, _ = dtrtrs(R, v, lower=0, trans=0)
+    listed = neg_step.tolist()
+    if not math.isfinite(sum(listed)):
+        return None
+    smax = max(map(abs, listed))
+    if not smax > DOUBLE_ROUNDOFF * wmax:
+        return w0 + 0.0, True  # converged: w_hi + w_lo with w_lo = 0
+    if not smax <= _OPERAND_LIMIT:
+        return None
+    refined = np.subtract(w0, neg_step, out=neg_step)
+    refined += 0.0
+    return refined, True
+
+
+def _refine_steps(
+    R: NDArray[np.float64], w0: NDArray[np.float64], split: GramSplit, steps: int,
+) -> tuple[NDArray[np.float64], bool]:
+    """Up to ``steps`` refinement steps ``w += R^{-1} R^{-T} (b - A w)``, ``w = w_hi + w_lo`` (the general path)."""
+    d = w0.shape[0]
+    pairs = split.pairs
     a_hi, a_lo = pairs[0][:d, :d], pairs[1][:d, :d]
     b_hi, b_lo = pairs[0][:d, d], pairs[1][:d, d]
-    a_hi_hi, a_hi_lo = _split(a_hi)
+    if split.a3t is not None:
+        a_hi_hi, a_hi_lo = split.a3t[1].T, split.a3t[2].T
+    else:
+        with np.errstate(over="ignore", invalid="ignore"):  # huge entries: caught by the finite check of the terms
+            a_hi_hi, a_hi_lo = _split(a_hi)
     terms = np.empty((d, 2 * d + 3))
     terms[:, 0] = b_hi
     terms[:, 1] = b_lo
-    # One step already reaches the normal-equations limit when the contraction
-    # kappa(A) u_d is tiny; more are needed only close to CONVERGENCE_LIMIT.
-    steps = 1 if kappa_a * DOUBLE_ROUNDOFF * d < 1e-8 else REFINE_STEPS
     w_hi = w0.copy()
     w_lo = np.zeros(d)
     for _ in range(steps):
@@ -131,7 +372,7 @@ def refine(
 
 def _split(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Dekker's split ``a = hi + lo`` with 26-bit halves, so products of halves are exact."""
-    c = 134217729.0 * a
+    c = _SPLITTER * a
     hi = c - (c - a)
     return hi, a - hi
 
@@ -140,7 +381,8 @@ def _exact_residual(terms, a_hi, a_lo, a_hi_hi, a_hi_lo, w_hi, w_lo) -> NDArray[
     """``b - A w`` rounded once, for ``A = a_hi + a_lo``, ``b = b_hi + b_lo``, ``w = w_hi + w_lo``.
 
     ``terms`` holds ``b_hi, b_lo`` in its first two columns; the rest is filled
-    here with the negated exact parts of ``A w``, and each row is summed by ``fsum``.
+    here with the negated exact parts of ``A w``, and each row is summed exactly
+    (:func:`exact_row_sums`).
     """
     d = w_hi.shape[0]
     with np.errstate(over="ignore", invalid="ignore"):
@@ -153,7 +395,76 @@ def _exact_residual(terms, a_hi, a_lo, a_hi_hi, a_hi_lo, w_hi, w_lo) -> NDArray[
         terms[:, 2] = -(a_hi @ w_lo + a_lo @ w_hi)
     if not np.isfinite(terms).all():
         return None
+    return exact_row_sums(terms)
+
+
+#: Arrays of at least this many terms (d >= 24 in refinement) are summed by extraction,
+#: which is faster than fsum from there on (measured).
+_EXTRACT_MIN_SIZE = 1200
+_EXTRACT_ROUNDS = 8
+#: Extraction stops while the grid eps * sigma is still far above the subnormal range.
+_EXTRACT_FLOOR = 2.0**-900
+
+
+def exact_row_sums(terms: NDArray[np.float64], overwrite: bool = False) -> NDArray[np.float64]:
+    """Each row's exact sum rounded once to nearest (``math.fsum`` of the row), as a vector.
+
+    For finite terms; large arrays go through :func:`_extracted_row_sums`, which gives
+    the same numbers (a correctly rounded sum is unique) and falls back to ``fsum`` itself
+    where its preconditions fail. ``overwrite``: ``terms`` is scratch and may be changed.
+    """
+    if terms.size >= _EXTRACT_MIN_SIZE:
+        return _extracted_row_sums(terms, overwrite)
     return np.array([math.fsum(row) for row in terms.tolist()])
+
+
+def _extracted_row_sums(terms: NDArray[np.float64], overwrite: bool = False) -> NDArray[np.float64]:
+    """Exact row sums by repeated error-free extraction (Rump, Ogita & Oishi's ExtractVector).
+
+    For a row ``p_1..p_n``, ``2^M >= n + 2`` and ``sigma = 2^k >= 2^M max |p_j|``:
+    ``q_j = fl(fl(sigma + p_j) - sigma)`` and ``p_j - q_j`` are exact, each ``q_j`` is a
+    multiple of ``eps sigma`` (``eps = 2^-53``) of size at most ``2^-M sigma``, so every
+    partial sum of the ``q_j`` is one too, below ``sigma``, and ``tau = sum q_j`` is exact
+    in any summation order; the remainders are at most ``eps sigma`` (Rump, Ogita & Oishi,
+    "Accurate floating-point summation part I: faithful rounding", SIAM J. Sci. Comput.
+    31(1), 2008, Lemma 3.3 and Theorem 3.4). Repeating with ``sigma' = 2^M eps sigma``
+    moves ``53 - M`` bits per round from the remainders into ``tau``; once every
+    remainder is zero (three rounds on typical rows) the row sum is exactly
+    ``sum_k tau_k``, a few doubles, and their ``fsum`` is the row's correctly rounded sum.
+    Rows with remainders left after ``_EXTRACT_ROUNDS`` rounds get ``fsum`` of their
+    ``tau_k`` and remainders: the same exact sum. Terms so large that ``sigma`` could
+    overflow, or so small that ``eps sigma`` could underflow, take plain ``fsum``.
+    """
+    n = terms.shape[1]
+    M = (n + 1).bit_length()  # 2^M >= n + 2
+    q = np.empty_like(terms)  # one scratch block for every round (large temporaries are costly)
+    mu = np.abs(terms, out=q).max(axis=1)
+    top = float(mu.max())
+    if not top <= 2.0 ** (1000 - M):
+        return np.array([math.fsum(row) for row in terms.tolist()])
+    _, expo = np.frexp(mu)  # mu < 2^expo (expo = 0 for an all-zero row)
+    sigma = np.ldexp(1.0, expo + M)[:, None]
+    if not float(sigma.min()) >= _EXTRACT_FLOOR:
+        return np.array([math.fsum(row) for row in terms.tolist()])
+    phi = 2.0 ** (M - 53)
+    rest = terms if overwrite else terms.copy()
+    taus = []
+    for _ in range(_EXTRACT_ROUNDS):
+        np.add(sigma, rest, out=q)
+        q -= sigma
+        rest -= q
+        taus.append(q.sum(axis=1))
+        if not rest.any():
+            break
+        sigma = sigma * phi
+        if not float(sigma.min()) >= _EXTRACT_FLOOR:
+            break
+    parts = np.stack(taus, axis=1).tolist()
+    left = rest.any(axis=1)
+    if left.any():
+        for i in np.flatnonzero(left).tolist():
+            parts[i].extend(rest[i].tolist())
+    return np.array([math.fsum(row) for row in parts])
 
 
 def value_span(rows: NDArray[np.float64]) -> tuple[NDArray[np.int64], NDArray[np.int64]]:

@@ -29,6 +29,7 @@ Given the augmented factor ``M = [[R, z], [0, rho]]`` (see :mod:`.factor`):
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -37,7 +38,7 @@ from scipy import stats
 from scipy.linalg.lapack import dtrcon, dtrtri, dtrtrs
 
 from .errors import EngineError
-from .gram import refine
+from .gram import GramSplit, refine
 from .spec import Spec
 
 __all__ = ["Solution", "Prediction", "Excitation", "solve", "predict", "inverse_moment", "excitation"]
@@ -112,12 +113,14 @@ class Excitation:
 
 def solve(
     factor: NDArray[np.float64], spec: Spec, prior_weight: float, weight_sum: float,
-    gram: NDArray[np.longdouble] | None = None, exact_sums: bool = False, scale: float = 1.0,
+    gram: NDArray[np.longdouble] | GramSplit | Callable[[], GramSplit] | None = None,
+    exact_sums: bool | Callable[[], bool] = False, scale: float = 1.0,
 ) -> Solution:
     """Solve the factored weighted ridge problem (see the module docstring for the formulas).
 
-    With ``gram`` (the extended-precision Gram matrix) the factor's solution is
-    refined when that is provably more accurate (:func:`.gram.refine`).
+    With ``gram`` (the extended-precision Gram matrix, its split, or a function giving
+    the split, called only when needed) the factor's solution is refined when that is
+    provably more accurate (:func:`.gram.refine`).
     ``factor`` is in the state's scaled coordinates (true factor = ``scale * factor``):
     coefficients do not depend on the scale; information, RSS and P do.
     """
@@ -142,7 +145,8 @@ def solve(
             w, refined = refine(R, rcond, w, gram, exact_sums)
         rank = d
         unidentified = np.zeros((0, d))
-        if info != 0 or not np.isfinite(w).all():  # pragma: no cover - excluded by the tests above
+        # A refined solution is finite (refine checks); only the factor's own needs the test.
+        if info != 0 or not (refined or np.isfinite(w).all()):  # pragma: no cover - excluded by the tests above
             identifiable = False
     if not identifiable:
         U, s, Vt = np.linalg.svd(R)

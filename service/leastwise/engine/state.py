@@ -26,7 +26,9 @@ from .errors import DimensionError, NonFiniteError, TimeOrderError
 from scipy.linalg.lapack import dtpqrt as _tpqrt
 
 from .factor import BLOCK_CHUNK, absorb_rows, block_size, new_factor
-from .gram import _NO_EXP, _NO_LSB, EXTENDED, FOLD_ROWS, fold, new_gram, sums_are_exact, value_span
+from .gram import (
+    _NO_EXP, _NO_LSB, EXTENDED, FOLD_ROWS, FoldMemo, GramSplit, fold, fold_memo, new_gram, sums_are_exact, value_span,
+)
 from .solution import Excitation, Prediction, Solution, excitation, inverse_moment, predict, solve
 from .spec import Spec
 
@@ -85,7 +87,7 @@ class State:
         "spec", "_factor", "n", "prior_weight", "weight_sum", "weight_sq_sum",
         "first_time", "last_time", "_solution", "_sigma",
         "_gram", "_pending", "_pending_n", "gram_exact", "_scale", "_scale_origin",
-        "_span_lsb", "_span_top", "_sums_exact",
+        "_span_lsb", "_span_top", "_sums_exact", "_fold_memo",
     )
 
     def __init__(self, spec: Spec) -> None:
@@ -120,6 +122,9 @@ class State:
         self._span_lsb = np.full(spec.dim + 1, _NO_LSB, dtype=np.int64)
         self._span_top = np.full(spec.dim + 1, _NO_EXP, dtype=np.int64)
         self._sums_exact = spec.ridge == 0.0
+        # The read-time fold of the buffered rows and its split (gram.FoldMemo): immutable and
+        # checked against the Gram matrix and rows on every use, so copies may share it.
+        self._fold_memo: FoldMemo | None = None
 
     # ------------------------------------------------------------------ views
     @property
@@ -136,17 +141,11 @@ class State:
     def solution(self) -> Solution:
         """Coefficients, identifiability, sigma and the moment matrices (cached per state)."""
         if self._solution is None:
-            gram = self.gram() if self.gram_exact else None
-            exact = False
-            if gram is not None and self._sums_exact:
-                lsb, top = self._span_lsb, self._span_top
-                k = self._pending_n
-                if k:
-                    plsb, ptop = value_span(self._pending[:k])
-                    lsb, top = np.minimum(lsb, plsb), np.maximum(top, ptop)
-                exact = sums_are_exact(lsb, top, self.n)
+            # The Gram split and the exact-sums test are handed over as functions: refinement
+            # asks for them only when the condition estimate allows it.
             self._solution = solve(
-                self._factor, self.spec, self.prior_weight, self.weight_sum, gram, exact, self._scale
+                self._factor, self.spec, self.prior_weight, self.weight_sum,
+                self._gram_split if self.gram_exact else None, self._gram_sums_exact, self._scale,
             )
         return self._solution
 
@@ -154,6 +153,23 @@ class State:
         """The extended-precision augmented Gram matrix with the buffered rows folded in (a new array)."""
         k = self._pending_n
         return fold(self._gram, self._pending[:k])
+
+    def _gram_split(self) -> GramSplit:
+        """:func:`.gram.split_gram` of :meth:`gram`, memoised across reads (and copies) of the same content."""
+        memo = fold_memo(self._fold_memo, self._gram, self._pending, self._pending_n)
+        self._fold_memo = memo
+        return memo.split
+
+    def _gram_sums_exact(self) -> bool:
+        """True when every sum in :meth:`gram` was accumulated without rounding (:func:`.gram.sums_are_exact`)."""
+        if not self._sums_exact:
+            return False
+        lsb, top = self._span_lsb, self._span_top
+        k = self._pending_n
+        if k:
+            plsb, ptop = value_span(self._pending[:k])
+            lsb, top = np.minimum(lsb, plsb), np.maximum(top, ptop)
+        return sums_are_exact(lsb, top, self.n)
 
     def coefficients(self) -> np.ndarray:
         """The exact minimiser ``w_n`` (minimum-norm while not identifiable)."""

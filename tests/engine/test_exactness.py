@@ -174,7 +174,7 @@ def test_coefficients_equal_batch_solve(d, extra, mode, lam, ridge, half_life, s
     # issue 2 asks for relative error <= 1e-10 below condition 1e6. Held as stated up to
     # cond ~4.5e3; above, the bound of a backward-stable streamed solve, 100 eps cond
     # (measured worst over 60,000 random problems: 34 eps cond). The literal 1e-10 near
-    # cond 1e6 is not met: see test_issue_bound_near_condition_1e6 (xfail, strict).
+    # cond 1e6 is not met on every BLAS kernel: see test_issue_bound_near_condition_1e6 (xfail).
     assert _rel(sol.coefficients, ref.coefficients) <= coefficient_tolerance(ref.condition)
     b, b0 = problem.weights()
     assert state.effective_n == pytest.approx(float(b.sum()), rel=1e-12)
@@ -345,13 +345,14 @@ def test_exact_start_minimum_norm_then_identifiable(d, data, lam, seed):
     assert _rel(sol.coefficients, np.linalg.solve(X, y)) <= 1e-9
 
 
-@pytest.mark.xfail(strict=True, reason=(
+@pytest.mark.xfail(strict=False, reason=(
     "issue 2 asks for relative error <= 1e-10 whenever cond < 1e6. On this problem (cond 4.9e5, "
-    "forgetting 0.957), found by a search over 60,000 random problems, the streamed state is off by "
-    "8.1e-10 against the exact rational solution (numpy lstsq on the batch: 2.0e-11). Streaming the "
-    "same pre-weighted rows through a plain (no forgetting) state gives 3.7e-10: this is the error "
-    "constant of row-by-row orthogonal updates in double precision (a few eps cond), not the "
-    "forgetting. Remove the marker if it passes."))
+    "forgetting 0.957), found by a search over 60,000 random problems, the streamed state was off by "
+    "8.1e-10 against the exact rational solution (numpy lstsq on the batch: 2.0e-11): the error "
+    "constant of row-by-row orthogonal updates in double precision (a few eps cond). Since reads use "
+    "the blocked update of the buffered rows (State._read_factor) it passes with some BLAS kernels "
+    "(OpenBLAS Haswell, Zen, Sandybridge) and still fails with others (SkylakeX): rounding decides, "
+    "so the marker is not strict."))
 def test_issue_bound_near_condition_1e6():
     # Found by a random search with the generator above (60,000 problems: ~0.05 % exceed 1e-10,
     # all at cond > 1e4). Reference: numpy lstsq of the augmented weighted system.

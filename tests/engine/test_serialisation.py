@@ -209,3 +209,30 @@ def test_flipped_bit_in_the_factor_is_detected():
 
 def test_state_format_error_is_an_engine_error():
     assert issubclass(StateFormatError, EngineError)
+
+
+def test_format_1_states_still_load_and_regain_the_base_at_the_next_fold():
+    # Checkpoints written before format 2 hold no base factor: reads use the row-by-row factor
+    # until the next fold of the row buffer, which starts the base afresh.
+    from leastwise.engine.gram import FOLD_ROWS
+
+    rng = np.random.default_rng(21)
+    state = State(Spec(dim=3))
+    for _ in range(40):  # 40 = one fold + 8 buffered rows
+        state.update(rng.normal(size=3), float(rng.normal()))
+    new = state.to_bytes()
+    m = 4
+    head = bytearray(new[:_HEAD.size])
+    head[4] = 1  # format version
+    head[5] &= ~32  # no base
+    body = new[_HEAD.size:len(new) - 4 - 8 * m * m]  # drop the base and the CRC
+    payload = bytes(head) + body
+    old = payload + struct.pack("<I", zlib.crc32(payload))
+    loaded = State.from_bytes(old)
+    assert loaded._base is None
+    assert np.allclose(loaded.coefficients(), state.coefficients(), rtol=1e-12, atol=0)
+    for _ in range(FOLD_ROWS):
+        loaded.update(rng.normal(size=3), float(rng.normal()))
+    assert loaded._base is not None
+    again = State.from_bytes(loaded.to_bytes())
+    assert again.to_bytes() == loaded.to_bytes()

@@ -198,7 +198,7 @@ def previous_solution(state: State) -> dict:
             plsb, ptop = previous_value_span(state._pending[:k])
             lsb, top = np.minimum(lsb, plsb), np.maximum(top, ptop)
         exact = previous_sums_are_exact(lsb, top, state.n)
-    return previous_solve(state._factor, state.spec, state.prior_weight, state.weight_sum, gram, exact, state._scale)
+    return previous_solve(state._read_factor(), state.spec, state.prior_weight, state.weight_sum, gram, exact, state._scale)
 
 
 # --------------------------------------------------------------------------------------------

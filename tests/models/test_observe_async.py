@@ -79,3 +79,45 @@ def test_a_cancelled_request_does_not_stall_the_writer(sqlite_url):
     assert out["results"][0]["status"] == "applied"
     assert reg.live_state("m").n == out["n"]
     reg.close()
+
+
+def test_an_answer_built_during_the_commit_is_dropped_when_the_commit_fails(sqlite_url, monkeypatch):
+    import pytest
+    from sqlalchemy.exc import OperationalError
+
+    from leastwise.models import writer as writer_module
+
+    reg = Registry(Store.open(sqlite_url))
+    reg.create("m", CONFIG)
+    reg.observe("m", {"x": [1.0, 0.0, 0.0], "y": 1.0})
+    before = reg.live_state("m").to_bytes()
+    built: list = []
+    real_build = reg._build_answers
+
+    def spy(jobs):  # noqa: ANN001
+        real_build(jobs)
+        built.extend(j.answer for j in jobs)
+
+    def disk_error(_seconds: float) -> None:  # runs after the rows are written, before the commit
+        raise OperationalError("COMMIT", {}, Exception("disk I/O error"))
+
+    monkeypatch.setattr(reg, "_build_answers", spy)
+    monkeypatch.setattr(reg, "_commit_delay", 0.001)
+    monkeypatch.setattr(writer_module.time, "sleep", disk_error)
+
+    async def main() -> dict:
+        task = asyncio.ensure_future(reg.observe_async("m", {"x": [0.5, 0.5, 0.5], "y": 2.0}))
+        for _ in range(200):  # let the early answer be built before the error arrives
+            await asyncio.sleep(0.005)
+            if task.done():
+                break
+        return await task
+
+    with pytest.raises(OperationalError):
+        asyncio.run(main())
+    assert built and built[0] is not None  # the answer had been built early ...
+    assert reg.live_state("m").to_bytes() == before  # ... and nothing of it took effect
+    monkeypatch.undo()
+    out = asyncio.run(reg.observe_async("m", {"x": [0.5, 0.5, 0.5], "y": 2.0}))
+    assert out["results"][0]["status"] == "applied" and out["n"] == 2
+    reg.close()

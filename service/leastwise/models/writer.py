@@ -184,7 +184,7 @@ class GroupWriter:
 
 
 def commit_group(store: Store, prepare: Callable[[Any], Sequence[PendingWrite]], now: float,
-                 delay: float = 0.0) -> Sequence[PendingWrite]:
+                 delay: float = 0.0, before_commit: Callable[[], None] | None = None) -> Sequence[PendingWrite]:
     """Open one write transaction, let ``prepare(conn)`` return the writes, write them and commit.
 
     ``prepare`` runs inside the transaction (the idempotency-key lookup and
@@ -195,6 +195,9 @@ def commit_group(store: Store, prepare: Callable[[Any], Sequence[PendingWrite]],
     another process) rolls back the group; each write is then retried in a
     transaction of its own, so one conflict only rejects its own write. Any
     other error (the database is unavailable) propagates with nothing committed.
+    ``before_commit`` runs once the rows are written, just before the commit
+    (the registry hands the prepared answers to the event loop there, so they
+    are built while the commit waits for the disk).
     """
     writes: Sequence[PendingWrite] = ()
     try:
@@ -202,6 +205,8 @@ def commit_group(store: Store, prepare: Callable[[Any], Sequence[PendingWrite]],
             writes = prepare(conn)
             if writes:
                 q.write_pending(conn, writes, now)
+                if before_commit is not None:
+                    before_commit()
                 if delay:
                     time.sleep(delay)
         return writes

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import asyncio
 import gc
 import ipaddress
 import logging
 import socket
 
+from leastwise.collector import CollectorPolicy
 from leastwise.logging import mask_url, setup_logging
 from leastwise.settings import Settings
 
@@ -128,17 +130,22 @@ def fast_loop_and_parser() -> tuple[str, str]:
 
 
 class _ThreadLimit:
-    """Sets the size of the worker-thread pool for blocking work once the event loop runs.
+    """Starts what needs the running event loop: the worker-thread pool size and the collector policy.
 
-    Each observation request waits for its group commit in a worker thread;
-    anyio's default of 40 would cap the requests in flight below the
-    connections a gateway fleet keeps open.
+    Observation requests wait for their group commit on the event loop; the
+    other blocking work (loads, reads on PostgreSQL, operator actions) runs in
+    worker threads, and anyio's default of 40 would cap those in flight below
+    the connections a gateway fleet keeps open. The collector policy
+    (:mod:`leastwise.collector`) keeps garbage-collection pauses short with
+    many models in memory.
     """
 
     def __init__(self, app, threads: int) -> None:  # noqa: ANN001
         self.app = app
         self.threads = threads
         self._set = False
+        self.collector = CollectorPolicy()
+        self._task: asyncio.Task | None = None
 
     def __getattr__(self, name: str):  # noqa: ANN204 - state, routes etc. of the wrapped app
         return getattr(self.app, name)
@@ -148,5 +155,6 @@ class _ThreadLimit:
             import anyio.to_thread
 
             anyio.to_thread.current_default_thread_limiter().total_tokens = self.threads
+            self._task = asyncio.get_running_loop().create_task(self.collector.run())
             self._set = True
         await self.app(scope, receive, send)

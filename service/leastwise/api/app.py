@@ -42,6 +42,7 @@ def create_app(settings: Settings | None = None, registry: Registry | None = Non
     app = FastAPI(title="leastwise", version=__version__, docs_url="/docs", redoc_url=None, **framework_options())
     app.state.settings = settings
     app.state.registry = registry
+    app.state.serialised = {}  # GET bodies' JSON per model (routes._body_bytes)
     # Fresh GETs may be answered on the event loop only where the version check is local (SQLite).
     app.state.inline_reads = registry.store.engine.dialect.name == "sqlite"
     install_handlers(app)

@@ -97,7 +97,25 @@ async def model_state(name: str, request: Request) -> Response:
         out, etag = fresh
         if wanted and _etag_matches(wanted, etag):
             return Response(status_code=304, headers={"ETag": etag, "Cache-Control": "no-cache"})
-    return json_response(out, headers={"ETag": etag, "Cache-Control": "no-cache"})
+    return Response(_body_bytes(request.app.state.serialised, name, out), media_type="application/json",
+                    headers={"ETag": etag, "Cache-Control": "no-cache"})
+
+
+def _body_bytes(kept: dict[str, tuple[Any, bytes]], name: str, body: Any) -> bytes:
+    """The JSON of a GET body, kept per model while the registry hands out the same body object.
+
+    The registry shares one body per version (built once, never mutated), so
+    an identity check (the kept reference keeps the id unique) tells whether
+    the kept serialisation still applies.
+    """
+    entry = kept.get(name)
+    if entry is not None and entry[0] is body:
+        return entry[1]
+    data = orjson.dumps(body, default=_default)
+    if len(kept) >= 65536:  # bounded: dashboards poll a working set, not every model
+        kept.clear()
+    kept[name] = (body, data)
+    return data
 
 
 @router.delete("/v1/models/{name}")

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
+from typing import Any
 
 from sqlalchemy.engine import Connection, Engine
 
@@ -23,6 +25,9 @@ class Store:
         self._version_sql = str(compiled)
         self._version_positional = bool(compiled.positiontup)
         self._dbapi_error = engine.dialect.loaded_dbapi.Error
+        # SQLite: one connection kept for the version check (a pool checkout costs twice the query)
+        self._quick: Any = None
+        self._quick_lock = threading.Lock()
 
     @classmethod
     def open(cls, url: str, *, pool_size: int = 8, run_migrations: bool = True,
@@ -51,9 +56,10 @@ class Store:
         """``(id, version, epoch, created)`` of the model named ``name``; None if there is none *or the quick read failed*.
 
         The read path's version check, cheap enough to run on every read: one
-        pre-compiled SELECT on a pooled DBAPI connection, without SQLAlchemy's
-        statement and transaction machinery (≈ 15 µs against ≈ 160 µs for
-        ``read()`` + ``model_by_name`` on SQLite). A single statement sees the
+        pre-compiled SELECT on a DBAPI connection, without SQLAlchemy's
+        statement and transaction machinery (on SQLite a connection kept for
+        it: ≈ 5 µs, against ≈ 15 µs with a pool checkout and ≈ 160 µs for
+        ``read()`` + ``model_by_name``). A single statement sees the
         newest committed row on both backends (SQLite: an autocommit read of
         the WAL; PostgreSQL: the statement's own snapshot, its implicit
         transaction rolled back when the connection returns to the pool), so
@@ -62,6 +68,8 @@ class Store:
         error the usual way.
         """
         params = (name,) if self._version_positional else {"name": name}
+        if self.engine.dialect.name == "sqlite":
+            return self._quick_version(params)
         dbapi_conn = self.engine.raw_connection()
         try:
             cursor = dbapi_conn.cursor()
@@ -77,6 +85,20 @@ class Store:
             dbapi_conn.close()  # back to the pool (which rolls back an implicit transaction)
         return (int(row[0]), int(row[1]), int(row[2]), float(row[3])) if row is not None else None
 
+    def _quick_version(self, params: tuple) -> tuple[int, int, int, float] | None:
+        """The SQLite version check on a connection of its own (autocommit: each SELECT sees the newest commit)."""
+        with self._quick_lock:
+            try:
+                if self._quick is None:
+                    self._quick = self.engine.raw_connection()
+                row = self._quick.driver_connection.execute(self._version_sql, params).fetchone()
+            except self._dbapi_error:
+                quick, self._quick = self._quick, None
+                if quick is not None:
+                    quick.invalidate()
+                return None
+        return (int(row[0]), int(row[1]), int(row[2]), float(row[3])) if row is not None else None
+
     @contextmanager
     def write(self) -> Iterator[Connection]:
         """A write transaction: committed when the block ends, rolled back on an exception."""
@@ -85,6 +107,10 @@ class Store:
                 yield conn
 
     def close(self) -> None:
+        with self._quick_lock:
+            quick, self._quick = self._quick, None
+        if quick is not None:
+            quick.close()
         checkpointer, self.checkpointer = self.checkpointer, None
         if checkpointer is not None:
             checkpointer.close()

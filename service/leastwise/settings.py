@@ -17,7 +17,7 @@
 | pool_size | ``LEASTWISE_POOL_SIZE`` | ``8`` database connections kept open (plus overflow) |
 | group_commit | ``LEASTWISE_GROUP_COMMIT`` | ``true``: observation requests that arrive while a commit is in flight share the next transaction |
 | max_group | ``LEASTWISE_MAX_GROUP`` | ``256`` requests at most per group transaction |
-| threads | ``LEASTWISE_THREADS`` | ``64`` worker threads for blocking work (each waiting request holds one) |
+| threads | ``LEASTWISE_THREADS`` | ``64`` worker threads for blocking work (model loads, PostgreSQL reads, operator actions; observation requests wait on the event loop) |
 """
 
 from __future__ import annotations

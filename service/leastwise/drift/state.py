@@ -275,8 +275,8 @@ class DriftState:
         ``sigma=None`` (not estimable yet): counted, not used.  Non-finite or
         non-positive sigma and non-finite residuals are treated the same way.
 
-        Returns :meth:`signature` after the update (computed from the values at
-        hand, so a caller watching for status changes needs no second call).
+        Returns :meth:`signature` after the update (a caller watching for
+        status changes needs no second call).
         """
         t = self._t + 1 if index is None else index
         self._t = t
@@ -299,7 +299,7 @@ class DriftState:
         self._sum = s
         self._sumsq += w * w
         if m <= self._warm:
-            return self._latch_code
+            return self.signature()
         # BDE streaming check, current horizon: S^2 (m-1) > (3a)^2 m M2
         lhs = s * s * (m - 1)
         rhs = m * m2
@@ -307,17 +307,14 @@ class DriftState:
             if self._bde_w_since < 0:
                 self._bde_w_since = t
             if lhs > self._c2a * rhs:
-                code = 2 << 7
                 if self._bde_a_since < 0:
                     self._bde_a_since = t
                     if self._latch_on and self._latch_code == 0:
                         self._latch(_L_BDE, math.sqrt(lhs / m2) if m2 > 0.0 else _INF,
                                     math.sqrt(self._c2a * m), t, t)
             else:
-                code = 1 << 7
                 self._bde_a_since = -1
         else:
-            code = 0
             self._bde_w_since = -1
             self._bde_a_since = -1
         # z-detectors
@@ -350,7 +347,6 @@ class DriftState:
         b = b + a * (z - b)
         self._bias = b
         if b > self._blim or -b > self._blim:
-            code |= 1 << 9
             if self._bias_since < 0:
                 self._bias_since = t
         else:
@@ -362,22 +358,17 @@ class DriftState:
             if self._scale_w_since < 0:
                 self._scale_w_since = t
             if q > self._s2a_hi or q < self._s2a_lo:
-                code |= 2 << 10
                 if self._scale_a_since < 0:
                     self._scale_a_since = t
                     if self._latch_on and self._latch_code == 0:
                         thr = self.config.scale_alarm
                         self._latch(_L_SCALE, math.sqrt(q), thr if q > 1.0 else 1.0 / thr, t, t)
             else:
-                code |= 1 << 10
                 self._scale_a_since = -1
         else:
             self._scale_w_since = -1
             self._scale_a_since = -1
-        # the rest of signature(), from the values at hand
-        hw = self._hw
-        return (code | self._latch_code | ((cp > hw) + (cp > ha)) << 3 | ((cn > hw) + (cn > ha)) << 5
-                | (b > 0.0) << 12 | 1 << 13)
+        return self.signature()
 
     def _latch(self, code: int, value: float, threshold: float, t: int, since: int) -> None:
         self._latch_code = code

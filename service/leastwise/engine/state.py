@@ -430,8 +430,9 @@ class State:
         if self._sums_exact:
             self._merge_span(self._pending[:k])
         if self._base is not None:
-            # One blocked update of the factor at the last fold replaces the k single-row ones.
-            self._factor = absorb_rows(self._base, np.array(self._pending[:k], order="F"))
+            # One blocked update of the factor at the last fold replaces the k single-row ones
+            # (the same update a read of this state may already have made).
+            self._factor = self._read_factor()
         self._base = np.array(self._factor, order="F")
         self._read = None
         self._pending_n = 0

@@ -312,15 +312,7 @@ class ResidualMonitor:
             self.roll_decay *= step.decay
             if self.roll_decay <= 0.5 or self.lag_factor is None:
                 self._roll(state, seq)
-        # _signature() with gated_run == 0, from the detector's signature at hand
-        if self.gated_alarm is not None:
-            g = 6
-        elif 0 >= self.settings["gate_run"]:
-            g = 4
-        else:
-            g = 0
-        e = self.erosion
-        sig = dsig << 4 | g | (1 if (e is not None and e.get("eroding")) else 0)
+        sig = self._signature(dsig)
         if sig == self._sig:
             return None
         return self._changed(seq, sig)
@@ -369,7 +361,8 @@ class ResidualMonitor:
         return out
 
     # -- status ------------------------------------------------------------------
-    def _signature(self) -> int:
+    def _signature(self, detector_signature: int | None = None) -> int:
+        """Fingerprint of :meth:`status` (``detector_signature``: the detector's, when the caller has it)."""
         g = 0
         if self.gated_alarm is not None:
             g = 3
@@ -378,7 +371,9 @@ class ResidualMonitor:
         elif self.gated_run:
             g = 1
         e = 1 if (self.erosion is not None and self.erosion.get("eroding")) else 0
-        return self.detector.signature() << 4 | g << 1 | e
+        if detector_signature is None:
+            detector_signature = self.detector.signature()
+        return detector_signature << 4 | g << 1 | e
 
     def _changed(self, seq: int, sig: int | None = None) -> dict[str, Any] | None:
         """The status change at ``seq``, if any (``sig``: :meth:`_signature`, when the caller has it).

@@ -597,9 +597,8 @@ class Registry:
                 pass
 
     def _build_answers(self, jobs: list[_Job]) -> None:
-        for job in jobs:
-            if job.answer is None and job.state is not None and job.results is not None:
-                job.answer = self._answer(job.config, job.state, job.results, job.applied, job.version)
+        for job in jobs:  # prepared jobs only (see _answer_early)
+            job.answer = self._answer(job.config, job.state, job.results, job.applied, job.version)
 
     def _prepare_group(self, tickets: list[Ticket], tips: dict[int, "_Tip"], found: dict[tuple[int, str], int],
                        now: float) -> list[PendingWrite]:

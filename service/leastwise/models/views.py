@@ -15,9 +15,6 @@ from .config import ModelConfig
 __all__ = ["rfc3339", "finite", "by_name", "state_view", "step_view", "prediction_view", "covariance_view"]
 
 
-_isfinite = math.isfinite
-
-
 def rfc3339(t: float | None) -> str | None:
     if t is None:
         return None
@@ -56,19 +53,14 @@ def state_view(config: ModelConfig, view: State) -> dict[str, Any]:
 
 
 def step_view(step: Step, seq: int, t: float | None) -> dict[str, Any]:
-    p, r, w, z, lev = step.prediction, step.residual, step.recursive_residual, step.standardized_residual, step.leverage
-    # The usual case: five plain finite floats (their sum is finite only if each one is), no finite() calls.
-    if type(p) is type(r) is type(w) is type(z) is type(lev) is float and _isfinite(p + r + w + z + lev):
-        return {"status": "applied", "seq": seq, "prediction": p, "residual": r, "recursive_residual": w,
-                "standardized_residual": z, "leverage": lev, "time": t}
     return {
         "status": "applied",
         "seq": seq,
-        "prediction": finite(p),
-        "residual": finite(r),
-        "recursive_residual": finite(w),
-        "standardized_residual": finite(z),
-        "leverage": finite(lev),
+        "prediction": finite(step.prediction),
+        "residual": finite(step.residual),
+        "recursive_residual": finite(step.recursive_residual),
+        "standardized_residual": finite(step.standardized_residual),
+        "leverage": finite(step.leverage),
         "time": t,
     }
 

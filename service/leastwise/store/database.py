@@ -35,8 +35,9 @@ def is_sqlite(engine: Engine) -> bool:
 def open_engine(url: str, *, pool_size: int = 8, wal_autocheckpoint: bool = True) -> Engine:
     """A SQLAlchemy engine for ``url`` (``sqlite:///path`` or ``postgresql+psycopg://...``).
 
-    ``wal_autocheckpoint=False`` (SQLite): commits never copy the WAL back
-    into the database file themselves; a :class:`WalCheckpointer` must.
+    ``wal_autocheckpoint=False`` (SQLite; no meaning for PostgreSQL): commits
+    never copy the WAL back into the database file themselves; a
+    :class:`WalCheckpointer` must.
     """
     parsed = make_url(url)
     if parsed.get_backend_name() == "sqlite":

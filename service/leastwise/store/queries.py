@@ -170,17 +170,7 @@ def log_after(conn: Connection, model_id: int, seq: int, upto: int | None = None
 
 def find_keys(conn: Connection, model_id: int, keys: Iterable[str]) -> dict[str, int]:
     """The keys among ``keys`` already recorded for the model, with the log seq they were applied at."""
-    wanted = list(dict.fromkeys(keys))
-    found: dict[str, int] = {}
-    for start in range(0, len(wanted), 500):
-        chunk = wanted[start : start + 500]
-        rows = conn.execute(
-            select(idempotency_keys.c.key, idempotency_keys.c.seq).where(
-                idempotency_keys.c.model_id == model_id, idempotency_keys.c.key.in_(chunk)
-            )
-        )
-        found.update({r.key: r.seq for r in rows})
-    return found
+    return {key: seq for (_mid, key), seq in find_keys_many(conn, ((model_id, k) for k in keys)).items()}
 
 
 class _Raw:

@@ -9,7 +9,7 @@ from typing import Any
 
 from sqlalchemy.engine import Connection, Engine
 
-from .database import WRITE, WalCheckpointer, migrate, open_engine
+from .database import WRITE, WalCheckpointer, is_sqlite, migrate, open_engine
 from .queries import MODEL_VERSION
 
 __all__ = ["Store"]
@@ -26,6 +26,7 @@ class Store:
         self._version_positional = bool(compiled.positiontup)
         self._dbapi_error = engine.dialect.loaded_dbapi.Error
         # SQLite: one connection kept for the version check (a pool checkout costs twice the query)
+        self._keep_version_conn = is_sqlite(engine)
         self._quick: Any = None
         self._quick_lock = threading.Lock()
 
@@ -34,11 +35,10 @@ class Store:
              background_checkpoints: bool = False) -> "Store":
         """Open (and migrate) the database; ``background_checkpoints``: SQLite WAL checkpoints off the
         commit path (the service's setting, see :class:`WalCheckpointer`)."""
-        sqlite = url.startswith("sqlite")
-        engine = open_engine(url, pool_size=pool_size, wal_autocheckpoint=not (background_checkpoints and sqlite))
+        engine = open_engine(url, pool_size=pool_size, wal_autocheckpoint=not background_checkpoints)
         if run_migrations:
             migrate(engine)
-        return cls(engine, WalCheckpointer(engine) if background_checkpoints and sqlite else None)
+        return cls(engine, WalCheckpointer(engine) if background_checkpoints and is_sqlite(engine) else None)
 
     @property
     def dialect(self) -> str:
@@ -68,36 +68,38 @@ class Store:
         error the usual way.
         """
         params = (name,) if self._version_positional else {"name": name}
-        if self.engine.dialect.name == "sqlite":
-            return self._quick_version(params)
-        dbapi_conn = self.engine.raw_connection()
+        try:
+            if self._keep_version_conn:
+                with self._quick_lock:
+                    if self._quick is None:
+                        self._quick = self.engine.raw_connection()
+                    try:
+                        row = self._version_row(self._quick, params)
+                    except self._dbapi_error:
+                        self._quick = None
+                        raise
+            else:
+                dbapi_conn = self.engine.raw_connection()
+                try:
+                    row = self._version_row(dbapi_conn, params)
+                finally:
+                    dbapi_conn.close()  # back to the pool (which rolls back an implicit transaction)
+        except self._dbapi_error:
+            return None
+        return (int(row[0]), int(row[1]), int(row[2]), float(row[3])) if row is not None else None
+
+    def _version_row(self, dbapi_conn: Any, params: Any) -> Any:
+        """The version row (None: no such model); on a database error the connection is invalidated first."""
         try:
             cursor = dbapi_conn.cursor()
             try:
                 cursor.execute(self._version_sql, params)
-                row = cursor.fetchone()
+                return cursor.fetchone()
             finally:
                 cursor.close()
         except self._dbapi_error:
-            dbapi_conn.invalidate()  # possibly broken: do not pool it again
-            return None
-        finally:
-            dbapi_conn.close()  # back to the pool (which rolls back an implicit transaction)
-        return (int(row[0]), int(row[1]), int(row[2]), float(row[3])) if row is not None else None
-
-    def _quick_version(self, params: tuple) -> tuple[int, int, int, float] | None:
-        """The SQLite version check on a connection of its own (autocommit: each SELECT sees the newest commit)."""
-        with self._quick_lock:
-            try:
-                if self._quick is None:
-                    self._quick = self.engine.raw_connection()
-                row = self._quick.driver_connection.execute(self._version_sql, params).fetchone()
-            except self._dbapi_error:
-                quick, self._quick = self._quick, None
-                if quick is not None:
-                    quick.invalidate()
-                return None
-        return (int(row[0]), int(row[1]), int(row[2]), float(row[3])) if row is not None else None
+            dbapi_conn.invalidate()  # possibly broken: never used or pooled again
+            raise
 
     @contextmanager
     def write(self) -> Iterator[Connection]:

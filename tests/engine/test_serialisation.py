@@ -109,6 +109,27 @@ def test_round_trip_at_every_gram_buffer_fill(mode):
         assert chain.to_bytes() == live.to_bytes(), i
 
 
+@pytest.mark.parametrize("mode", MODES)
+def test_reads_between_updates_leave_no_trace_in_the_state(mode):
+    """A state read (solution, predictions) after every update folds exactly like one never read.
+
+    Reads keep the blocked update of the buffered rows for reuse; the fold
+    that a full buffer triggers must not pick up a read made before the
+    buffer's last row arrived (replay never reads, so it would differ).
+    """
+    d = 4
+    X, y, t = _data(d, 150, 8)
+    read = State(_spec(mode, d, 0.0))
+    unread = State(_spec(mode, d, 0.0))
+    for i in range(150):
+        read.update(X[i], float(y[i]), float(t[i]))
+        unread.update(X[i], float(y[i]), float(t[i]))
+        read.solution()
+        read.predict(X[i:i + 1], 0.9)
+        assert read.to_bytes() == unread.to_bytes(), i
+    assert read.coefficients().tolist() == unread.coefficients().tolist()
+
+
 def test_reset_and_copy():
     X, y, t = _data(2, 20, 1)
     s = State(Spec(dim=2, half_life=10.0, ridge=1.0))

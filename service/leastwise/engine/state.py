@@ -385,6 +385,7 @@ class State:
         # overwrite_b=0: LAPACK works on a copy, the buffered row stays for the Gram fold.
         self._factor = _tpqrt(0, block_size(d + 1), self._factor, row, overwrite_a=1, overwrite_b=0)[0]
         self._pending_n = k + 1
+        self._read = None  # before a fold: it would reuse a read's update, which lacks this row
         if k + 1 == FOLD_ROWS:
             self._fold_all_pending()
         self.n += 1

@@ -89,17 +89,37 @@ def test_concurrent_posts_share_transactions_and_replay_bit_identical(sqlite_url
     fresh.close()
 
 
-def test_answers_report_their_own_version(sqlite_url):
+def test_answers_report_the_model_as_their_group_committed_it(sqlite_url):
     reg = Registry(Store.open(sqlite_url))
     reg.create("m", CONFIG)
     rng = np.random.default_rng(9)
     bodies = {"m": [_obs(rng, i) for i in range(200)]}
     answers = _hammer(reg, ["m"], bodies, threads=16)
-    versions = sorted(a["version"] for a in answers)
-    assert versions == list(range(2, 202))
-    assert sorted(a["n"] for a in answers) == list(range(1, 201))
-    assert reg._writer.groups < reg._writer.jobs  # some requests really shared a transaction
+    seqs = sorted(a["results"][0]["seq"] for a in answers)
+    assert seqs == list(range(1, 201))  # every observation applied once, in one order
+    for a in answers:
+        assert a["n"] >= a["results"][0]["seq"]  # its own observation is in the model it reports
+        assert a["version"] == a["n"] + 1  # created at version 1, one version per applied request
+    by_version: dict[int, list[dict]] = {}
+    for a in answers:
+        by_version.setdefault(a["version"], []).append(a)
+    assert len(by_version) < len(answers)  # some requests really shared a transaction
+    assert len(by_version) <= reg._writer.groups
+    # Each reported model equals the observations up to its n, replayed one by one in seq order.
+    ordered = [body for _seq, body in sorted((a["results"][0]["seq"], b) for a, b in _pairs(answers, bodies["m"]))]
+    replay = State(reg.live_state("m").spec)
+    for n, body in enumerate(ordered, start=1):
+        replay.update([1.0, *body["x"]], body["y"])  # the intercept term comes first
+        for a in by_version.get(n + 1, []):
+            assert list(a["coefficients"].values()) == replay.coefficients().tolist()
+            assert a["sigma"] == replay.solution().sigma
     reg.close()
+
+
+def _pairs(answers: list[dict], bodies: list[dict]) -> list[tuple[dict, dict]]:
+    """Each answer with the body it answered (matched by the idempotency key)."""
+    by_key = {b["key"]: b for b in bodies}
+    return [(a, by_key[a["results"][0]["key"]]) for a in answers]
 
 
 def test_duplicate_keys_inside_one_group_apply_once(sqlite_url):

@@ -542,7 +542,9 @@ class Registry:
 
         Requests for one model chain inside the group (each starts from the
         previous one's prepared state) and become one write that advances the
-        version once per request. Nothing in memory changes before the commit;
+        version once per request. Each answer carries its own observations'
+        results and the model as committed by the group (version, n,
+        coefficients after the group's last request for that model). Nothing in memory changes before the commit;
         a model whose write was rejected (another process wrote, or it was
         reset or deleted meanwhile) answers its requests with ``_Stale`` and
         they take the locked path.
@@ -597,8 +599,12 @@ class Registry:
                 pass
 
     def _build_answers(self, jobs: list[_Job]) -> None:
+        shared: dict[int, dict[str, Any]] = {}  # the committed model's part, once per model of the group
         for job in jobs:  # prepared jobs only (see _answer_early)
-            job.answer = self._answer(job.config, job.state, job.results, job.applied, job.version)
+            committed = shared.get(id(job.state))
+            if committed is None:
+                committed = shared[id(job.state)] = self._committed(job.config, job.state, job.version)
+            job.answer = self._answer(job.config, job.state, job.results, job.applied, job.version, committed)
 
     def _prepare_group(self, tickets: list[Ticket], tips: dict[int, "_Tip"], found: dict[tuple[int, str], int],
                        now: float) -> list[PendingWrite]:
@@ -632,10 +638,14 @@ class Registry:
                 tip.state, tip.monitor, tip.seq = state, monitor, seq
                 tip.version += 1
                 tip.rows.extend(rows)
-            job.state, job.version = tip.state, tip.version
             tip.jobs.append(ticket)
         writes: list[PendingWrite] = []
         for mid, tip in tips.items():
+            # Every answer describes the model as this transaction commits it: the
+            # versions in between are never visible to anyone, and one solution per
+            # model and group serves all its answers.
+            for ticket in tip.jobs:
+                ticket.job.state, ticket.job.version = tip.state, tip.version
             if not tip.rows:
                 continue
             checkpoint = None
@@ -646,20 +656,27 @@ class Registry:
             writes.append(tip.write)
         return writes
 
-    def _answer(self, config: ModelConfig, state: State, results: list[dict[str, Any]], applied: int,
-                version: int) -> dict[str, Any]:
-        """The observation answer from the (committed) state at ``version``; its solution is cached there."""
-        sol = state.solution()
-        gated = sum(1 for r in results if r.get("status") == "gated")  # logged, not applied (drift gate)
-        out = {
-            "results": results,
-            "applied": applied - gated,
-            "duplicates": len(results) - applied,
+    @staticmethod
+    def _committed(config: ModelConfig, state: State, version: int) -> dict[str, Any]:
+        """The answer's description of the committed model (never mutated: answers of one group share it)."""
+        sol = state.solution()  # cached on the state, which becomes the live one
+        return {
             "version": version,
             "n": state.n,
             "identifiable": bool(sol.identifiable),
             "coefficients": by_name(config, sol.coefficients),
             "sigma": sol.sigma if sol.sigma is None or math.isfinite(sol.sigma) else None,
+        }
+
+    def _answer(self, config: ModelConfig, state: State, results: list[dict[str, Any]], applied: int,
+                version: int, committed: dict[str, Any] | None = None) -> dict[str, Any]:
+        """The observation answer: this request's results and the (committed) model at ``version``."""
+        gated = sum(1 for r in results if r.get("status") == "gated")  # logged, not applied (drift gate)
+        out = {
+            "results": results,
+            "applied": applied - gated,
+            "duplicates": len(results) - applied,
+            **(committed if committed is not None else self._committed(config, state, version)),
         }
         if gated:
             out["gated"] = gated

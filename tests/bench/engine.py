@@ -3,7 +3,8 @@
 Not a test: run ``python tests/bench/engine.py``. Figures are ratios measured in
 one run (interleaved repeats, best of each) because the machines are shared.
 Prints one JSON line per dimension (d = 8 with the targets), one for the drift
-monitor, and one per dimension for the read-time solve (``solution_us``).
+monitor, one for the update while another thread holds the interpreter
+(``gil``), and one per dimension for the read-time solve (``solution_us``).
 """
 
 from __future__ import annotations
@@ -168,6 +169,53 @@ def measure_solution(d: int, repeat: int = 9) -> dict:
             "refined": bool(state.solution().refined)}
 
 
+def measure_contention(d: int = 8, updates: int = 3000) -> dict:
+    """State.update while another thread keeps the interpreter busy (as the event loop does for the writer).
+
+    Every C call that lets go of the interpreter lock costs the calling thread a
+    wait for the busy thread to give it back. ``update_busy_ratio`` is the update's
+    time with the busy thread over its time alone; ``np_dot_busy_us`` shows what one
+    such call (numpy's ``dot`` on two vectors, which the update no longer uses) costs.
+    """
+    import threading
+
+    rng = np.random.default_rng(4)
+    X, y = rng.standard_normal((2 * updates + 200, d)), rng.standard_normal(2 * updates + 200)
+    state = State(Spec(dim=d))
+    for i in range(200):
+        state.update(X[i], float(y[i]))
+    u, v = rng.standard_normal(d), rng.standard_normal(d)
+
+    def timed(fn, n: int) -> float:
+        start = time.perf_counter()
+        for i in range(n):
+            fn(i)
+        return (time.perf_counter() - start) / n
+
+    def update(i: int) -> None:
+        state.update(X[200 + i % (2 * updates)], float(y[200 + i % (2 * updates)]))
+
+    alone = timed(update, updates)
+    dot_alone = timed(lambda _i: np.dot(u, v), updates)
+    stop = threading.Event()
+
+    def busy() -> None:
+        while not stop.is_set():
+            sum(range(100))
+
+    worker = threading.Thread(target=busy)
+    worker.start()
+    try:
+        contended = timed(update, updates)
+        dot_contended = timed(lambda _i: np.dot(u, v), updates)
+    finally:
+        stop.set()
+        worker.join()
+    return {"d": d, "bench": "gil", "update_alone_us": round(alone * 1e6, 2), "update_busy_us": round(contended * 1e6, 2),
+            "update_busy_ratio": round(contended / alone, 2), "np_dot_alone_us": round(dot_alone * 1e6, 2),
+            "np_dot_busy_us": round(dot_contended * 1e6, 2)}
+
+
 def main() -> None:
     quick = "--quick" in sys.argv
     rows = 100_000 if quick else 1_000_000
@@ -178,6 +226,7 @@ def main() -> None:
     result["targets"] = {"update_ratio": "<= 1.5", "block_rows_per_s": ">= 5e6", "block_vs_lstsq": "<= 1.0"}
     print(json.dumps(result))
     print(json.dumps(measure_drift(8) | info))
+    print(json.dumps(measure_contention(8) | info))
     for d in (8, 32, 64, 128):
         print(json.dumps(measure_solution(d, 5 if quick else 9) | info))
 

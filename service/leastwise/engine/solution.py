@@ -156,10 +156,10 @@ def solve(
         coords = U[:, :rank].T @ z
         w = Vt[:rank].T @ (coords / s[:rank])
         leftover = U[:, rank:].T @ z
-        extra = float(np.dot(leftover, leftover)) * scale * scale
+        extra = float(leftover @ leftover) * scale * scale
         unidentified = Vt[rank:].copy()
         svd = (U, s, Vt)
-    penalty = prior_weight * spec.ridge * float(np.dot(w, w)) if spec.ridge > 0.0 else 0.0
+    penalty = prior_weight * spec.ridge * float(w @ w) if spec.ridge > 0.0 else 0.0
     rss = max(rho * rho + extra - penalty, 0.0)
     dof = weight_sum - rank
     sigma = math.sqrt(rss / dof) if dof > 0.0 else None

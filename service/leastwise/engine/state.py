@@ -316,7 +316,7 @@ class State:
         self.gram_exact = False
         self.prior_weight *= total_decay
         self.weight_sum = total_decay * self.weight_sum + float(tail.sum())
-        self.weight_sq_sum = total_decay * total_decay * self.weight_sq_sum + float(np.dot(tail, tail))
+        self.weight_sq_sum = total_decay * total_decay * self.weight_sq_sum + float(tail @ tail)
         self.n += k
         self._sigma = -1.0
         if t is not None:
@@ -350,14 +350,17 @@ class State:
         lev: float | None = None
         prediction = math.inf
         if leverage <= LEVERAGE_LIMIT:  # False for NaN and inf too
-            prediction = float(np.dot(u, factor[:d, d]))
+            # ``@``, not np.dot: the same ddot, but np.dot lets go of the interpreter lock for
+            # it, and winning the lock back from a busy event loop costs the writer thread
+            # tens of microseconds per call (tests/bench/engine.py, "gil" line).
+            prediction = float(u @ factor[:d, d])
             lev = leverage
         if not math.isfinite(prediction):
             # No information along x yet: predict with the minimum-norm solution.
             lev = None
             previous = solve(factor, self.spec, self.prior_weight, self.weight_sum, None, False, self._scale)
             with np.errstate(over="ignore", invalid="ignore"):
-                prediction = float(np.dot(previous.coefficients, x))
+                prediction = float(previous.coefficients @ x)
             if not math.isfinite(prediction):
                 raise NonFiniteError("prediction outside the floating-point range; rescale the features")
         residual = y - prediction
@@ -471,7 +474,7 @@ class State:
             rss = rho * rho
             if self.spec.ridge > 0.0 and self.prior_weight > 0.0:
                 w = dtrsv(self._factor[:d, :d], self._factor[:d, d])
-                rss -= self.prior_weight * self.spec.ridge * float(np.dot(w, w))
+                rss -= self.prior_weight * self.spec.ridge * float(w @ w)
             if rss > 0.0 and math.isfinite(rss):
                 value = math.sqrt(rss / dof)
         self._sigma = value

@@ -194,7 +194,7 @@ def a_priori(state: State, x: np.ndarray, y: float, t: float | None) -> Step | N
     rss = rho * rho
     if spec.ridge > 0.0 and state.prior_weight > 0.0:
         w = dtrsv(R, zc)
-        rss -= state.prior_weight * spec.ridge * float(np.dot(w, w))
+        rss -= state.prior_weight * spec.ridge * float(w @ w)
     if not (rss > 0.0 and math.isfinite(rss)):
         return None
     sigma = math.sqrt(rss / dof)
@@ -203,7 +203,7 @@ def a_priori(state: State, x: np.ndarray, y: float, t: float | None) -> Step | N
     lev = nu * nu / decay
     if not lev <= 1e24:
         return None
-    prediction = float(np.dot(u, zc))
+    prediction = float(u @ zc)
     residual = float(y) - prediction
     recursive = residual / math.sqrt(1.0 + lev)
     z = recursive / sigma

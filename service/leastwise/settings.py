@@ -17,6 +17,7 @@
 | pool_size | ``LEASTWISE_POOL_SIZE`` | ``8`` database connections kept open (plus overflow) |
 | group_commit | ``LEASTWISE_GROUP_COMMIT`` | ``true``: observation requests that arrive while a commit is in flight share the next transaction |
 | max_group | ``LEASTWISE_MAX_GROUP`` | ``256`` requests at most per group transaction |
+| group_gather_us | ``LEASTWISE_GROUP_GATHER_US`` | ``500`` microseconds at most the writer waits for the event loop to queue the requests it has in hand before a small group (``0``: never; see models/writer.py) |
 | threads | ``LEASTWISE_THREADS`` | ``64`` worker threads for blocking work (model loads, PostgreSQL reads, operator actions; observation requests wait on the event loop) |
 """
 
@@ -56,6 +57,7 @@ class Settings:
     pool_size: int = 8
     group_commit: bool = True
     max_group: int = 256
+    group_gather_us: int = 500
     threads: int = 64
 
     def __post_init__(self) -> None:
@@ -75,6 +77,8 @@ class Settings:
             raise ValueError("limit_concurrency must be >= 0, timeout_keep_alive and body_timeout >= 1")
         if self.max_group < 1:
             raise ValueError("max_group must be >= 1")
+        if not 0 <= self.group_gather_us <= 100_000:
+            raise ValueError("group_gather_us must be in 0..100000")
         if self.threads < 1:
             raise ValueError("threads must be >= 1")
 

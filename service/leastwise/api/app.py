@@ -24,7 +24,8 @@ def build_registry(settings: Settings) -> Registry:
     """Open the database (running migrations) and make the registry."""
     store = Store.open(settings.database, pool_size=settings.pool_size, background_checkpoints=True)
     return Registry(store, checkpoint_every=settings.checkpoint_every, compact_log=settings.compact_log,
-                    max_batch=settings.max_batch, group_commit=settings.group_commit, max_group=settings.max_group)
+                    max_batch=settings.max_batch, group_commit=settings.group_commit, max_group=settings.max_group,
+                    group_gather=settings.group_gather_us / 1e6)
 
 
 def framework_options() -> dict:

@@ -190,11 +190,13 @@ class Registry:
         clock: Callable[[], float] = time.time,
         group_commit: bool = True,
         max_group: int = 256,
+        group_gather: float = 0.0005,
     ) -> None:
         self.store = store
         #: share one transaction among the observation requests that queue up (see writer.py)
         self.group_commit = group_commit
         self.max_group = max_group
+        self.group_gather = group_gather  # seconds (see writer.py, gathering)
         self._writer: GroupWriter | None = None
         self._writer_guard = threading.Lock()
         self._commit_delay = debug_commit_delay()
@@ -219,7 +221,8 @@ class Registry:
         if writer is None:
             with self._writer_guard:
                 if self._writer is None:
-                    self._writer = GroupWriter(self._run_group, max_group=self.max_group)
+                    self._writer = GroupWriter(self._run_group, max_group=self.max_group,
+                                               gather_wait=self.group_gather)
                 writer = self._writer
         return writer
 

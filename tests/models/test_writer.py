@@ -1,0 +1,75 @@
+"""The group writer on its own: gathering the requests an event loop has in hand into one transaction."""
+
+from __future__ import annotations
+
+import asyncio
+import time
+
+from leastwise.models.writer import GroupWriter, Ticket
+
+
+class _CountingWriter(GroupWriter):
+    gathered = 0
+
+    def _gather(self, loop: asyncio.AbstractEventLoop) -> None:
+        self.gathered += 1
+        super()._gather(loop)
+
+
+def _recording_writer(**options: float) -> tuple[_CountingWriter, list[list[int]]]:
+    groups: list[list[int]] = []
+
+    def handler(tickets: list[Ticket]) -> None:
+        groups.append([t.job for t in tickets])
+        for t in tickets:
+            t.resolve(t.job)
+
+    return _CountingWriter(handler, **options), groups
+
+
+async def _submit_while_busy(writer: GroupWriter, jobs: int) -> list[int]:
+    """Queue one job, keep the loop busy (as parsing more requests does), queue the rest, then await them all."""
+    futures = [writer.submit_async(0)]
+    time.sleep(0.05)  # the loop is busy: the writer has woken on the first job meanwhile
+    futures += [writer.submit_async(i) for i in range(1, jobs)]
+    return list(await asyncio.gather(*futures))
+
+
+def test_a_small_group_waits_for_what_the_loop_has_in_hand():
+    writer, groups = _recording_writer(gather_wait=5.0)
+    try:
+        answers = asyncio.run(_submit_while_busy(writer, 6))
+    finally:
+        writer.close()
+    assert answers == list(range(6))
+    assert groups == [[0, 1, 2, 3, 4, 5]]  # one transaction: the loop queued the rest before it let the writer go
+    assert writer.gathered == 1
+
+
+def test_without_gathering_the_writer_starts_with_what_is_queued():
+    writer, groups = _recording_writer(gather_wait=0.0)
+    try:
+        answers = asyncio.run(_submit_while_busy(writer, 6))
+    finally:
+        writer.close()
+    assert answers == list(range(6))
+    assert groups[0] == [0] and sorted(j for g in groups for j in g) == list(range(6))
+
+
+def test_gathering_is_skipped_when_enough_requests_are_queued():
+    writer, groups = _recording_writer(gather_wait=5.0, gather_below=1)
+    try:
+        answers = asyncio.run(_submit_while_busy(writer, 3))
+    finally:
+        writer.close()
+    assert answers == [0, 1, 2]
+    assert groups[0] == [0] and writer.gathered == 0  # it did not wait for the loop
+
+
+def test_threads_never_wait_for_a_loop():
+    writer, groups = _recording_writer(gather_wait=5.0)
+    try:
+        assert writer.submit(7).wait() == 7
+    finally:
+        writer.close()
+    assert groups == [[7]] and writer.gathered == 0

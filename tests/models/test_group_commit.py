@@ -183,6 +183,54 @@ def test_a_bad_request_in_a_group_does_not_affect_the_others(sqlite_url):
     reg.close()
 
 
+def test_a_request_failing_half_way_drops_its_models_part_of_the_group(sqlite_url, monkeypatch):
+    """Single observations chain on the group's working copy in place; one that fails after changing it
+    must not leave the change behind: the model's other requests are retried on their own."""
+    import asyncio
+
+    from leastwise.models.drift import ResidualMonitor
+
+    reg = Registry(Store.open(sqlite_url))
+    reg.create("m", CONFIG)
+    reg.observe("m", {"x": [1.0, 0.0, 0.0], "y": 1.0, "key": "first"})
+    original = ResidualMonitor.advance
+
+    def advance(self, state, x, y, t, seq):  # noqa: ANN001
+        out = original(self, state, x, y, t, seq)
+        if y == 666.0:
+            raise RuntimeError("failed after the update")
+        return out
+
+    monkeypatch.setattr(ResidualMonitor, "advance", advance)
+    retries = []
+    plain_retry = Registry._observe_retry
+    monkeypatch.setattr(Registry, "_observe_retry", lambda self, *a: retries.append(1) or plain_retry(self, *a))
+    rng = np.random.default_rng(12)
+    bodies = [_obs(rng, i) for i in range(10)]
+    bodies[5] = {**bodies[5], "y": 666.0}
+
+    async def main() -> list:
+        return await asyncio.gather(*(reg.observe_async("m", b) for b in bodies), return_exceptions=True)
+
+    out = asyncio.run(main())
+    assert isinstance(out[5], RuntimeError)
+    good = [a for i, a in enumerate(out) if i != 5]
+    assert all(a["results"][0]["status"] == "applied" for a in good)
+    assert retries  # the model's part of the group was dropped and retried
+    # Memory and the database hold exactly the nine good observations (and the first), each once.
+    ordered = sorted((a["results"][0]["seq"], b) for a, b in zip(good, bodies[:5] + bodies[6:]))
+    assert [seq for seq, _ in ordered] == list(range(2, 11))
+    replay = State(reg.live_state("m").spec)
+    replay.update([1.0, 1.0, 0.0, 0.0], 1.0)
+    for _seq, b in ordered:
+        replay.update([1.0, *b["x"]], b["y"])
+    assert reg.live_state("m").to_bytes() == replay.to_bytes()
+    reg.close()
+    fresh = Registry(Store.open(sqlite_url))
+    assert fresh.live_state("m").to_bytes() == replay.to_bytes()
+    fresh.close()
+
+
 def test_without_group_commit(sqlite_url):
     reg = Registry(Store.open(sqlite_url), group_commit=False)
     reg.create("m", CONFIG)

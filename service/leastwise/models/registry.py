@@ -167,6 +167,7 @@ class _Tip:
     rows: list[LogRow] = field(default_factory=list)
     jobs: list[Ticket] = field(default_factory=list)
     write: PendingWrite | None = None
+    owned: bool = False  # state and monitor are this group's working copies (not the live objects)
 
 
 def _x_bytes(row: np.ndarray) -> bytes:
@@ -627,18 +628,33 @@ class Registry:
                     tip = _Tip(live, live.state, live.monitor, live.version, live.version, live.seq, live.checkpoint_seq)
                 tips[job.model_id] = tip
             model_known = known.setdefault(job.model_id, {})
-            state = tip.state.copy()
-            monitor = tip.monitor.copy()
+            # Until a request of this group changes the model, the tip holds the live state; from
+            # then on its own working copy, which nothing else references (the answers read the
+            # tip's final state, after this loop). A single observation then chains on it in
+            # place: its only expected error, a time going backwards, is raised before any change.
+            # A batch may fail half-way, so it works on a copy of its own.
+            in_place = len(job.observations) == 1 and tip.owned
+            if in_place:
+                state, monitor = tip.state, tip.monitor
+            else:
+                state, monitor = tip.state.copy(), tip.monitor.copy()
             try:
                 results, rows, seq, keys = self._steps(job.config, state, monitor, job.observations, model_known,
                                                        tip.seq, now)
             except Exception as exc:  # noqa: BLE001 - this request's error (e.g. a time going backwards)
                 ticket.fail(exc)
+                if in_place and not isinstance(exc, InvalidInput):
+                    # The working copy may be half-changed: this model's part of the group is dropped
+                    # (nothing of it is written) and its requests take the locked path again.
+                    for other in tip.jobs:
+                        other.fail(_Stale())
+                    del tips[job.model_id]
+                    known[job.model_id] = {k: v for (mid, k), v in found.items() if mid == job.model_id}
                 continue
             model_known.update(keys)
             job.results, job.applied = results, len(rows)
             if rows:
-                tip.state, tip.monitor, tip.seq = state, monitor, seq
+                tip.state, tip.monitor, tip.seq, tip.owned = state, monitor, seq, True
                 tip.version += 1
                 tip.rows.extend(rows)
             tip.jobs.append(ticket)

@@ -17,11 +17,10 @@ import random
 import numpy as np
 import orjson
 import pytest
-from scipy.linalg.blas import dnrm2, dtrsv
 
 from leastwise.drift import DriftConfig, DriftState
 from leastwise.drift.state import _L_BDE, _L_DOWN, _L_SCALE, _L_UP
-from leastwise.engine import State, Step
+from leastwise.engine import State
 from leastwise.models import ModelConfig
 from leastwise.models.drift import ResidualMonitor, a_priori
 from leastwise.models.inputs import parse_observations
@@ -116,43 +115,6 @@ class _RefDriftState(DriftState):
             self._scale_a_since = -1
 
 
-def _ref_a_priori(state, x, y, t):
-    spec = state.spec
-    d = spec.dim
-    if spec.half_life is None:
-        decay = float(spec.forgetting)
-    elif state.last_time is None or t is None:
-        decay = 1.0
-    else:
-        decay = 2.0 ** (-(max(t, state.last_time) - state.last_time) / spec.half_life)
-    if not decay > 0.0:
-        return None
-    factor = state.factor
-    dof = state.weight_sum - d
-    if not dof > 0.0:
-        return None
-    rho = float(factor[d, d])
-    rss = rho * rho
-    if spec.ridge > 0.0 and state.prior_weight > 0.0:
-        w = dtrsv(factor[:d, :d], factor[:d, d])
-        rss -= state.prior_weight * spec.ridge * float(np.dot(w, w))
-    if not (rss > 0.0 and math.isfinite(rss)):
-        return None
-    sigma = math.sqrt(rss / dof)
-    u = dtrsv(factor[:d, :d], np.asarray(x, dtype=np.float64), trans=1)
-    nu = float(dnrm2(u))
-    lev = nu * nu / decay
-    if not lev <= 1e24:
-        return None
-    prediction = float(np.dot(u, factor[:d, d]))
-    residual = float(y) - prediction
-    recursive = residual / math.sqrt(1.0 + lev)
-    z = recursive / sigma
-    if not math.isfinite(z):
-        return None
-    return Step(prediction, residual, lev, recursive, z, decay)
-
-
 class _RefMonitor(ResidualMonitor):
     __slots__ = ()
 
@@ -189,7 +151,7 @@ class _RefMonitor(ResidualMonitor):
         g = self.settings.get("gate")
         if g is None or self.detector.n_used < self.detector.config.warmup:
             return None
-        step = _ref_a_priori(state, x, y, t)
+        step = a_priori(state, x, y, t)  # the gate's step is the engine's (State.preview)
         if step is None or not abs(step.standardized_residual) > g:
             return None
         return step
@@ -364,16 +326,26 @@ def test_monitor_matches_the_previous_code(name):
     assert changes >= 1 and len(statuses) >= 2
 
 
-def test_a_priori_matches_the_previous_code():
+def test_a_priori_is_the_step_the_update_reports():
+    """The gate decides on State.preview: the very step update() then reports, bit for bit; nothing changes."""
     for name in ("ols", "half_life", "ridge", "forgetting"):
         cfg = ModelConfig.parse(MODEL_CONFIGS[name])
         state = State(cfg.spec())
+        standardised = 0
         for i, (x, y, t) in enumerate(_stream(3, 300, len(FEATS))):
             row = np.array(([1.0] if cfg.intercept else []) + x)
             tt = t if cfg.half_life is not None else None
-            assert a_priori(state, row, y, tt) == _ref_a_priori(state, row, y, tt), (name, i)
-            assert a_priori(state, row.tolist(), y, tt) == _ref_a_priori(state, row.tolist(), y, tt)
-            state.update(row, y, tt)
+            before = state.to_bytes()
+            seen = a_priori(state, row, y, tt)
+            assert a_priori(state, row.tolist(), y, tt) == seen
+            assert state.to_bytes() == before
+            step = state.update(row, y, tt)
+            if step.standardized_residual is None:
+                assert seen is None, (name, i)
+            else:
+                assert seen == step, (name, i)
+                standardised += 1
+        assert standardised > 250  # past the start-up phase every step is standardised
 
 
 def test_registry_flow_with_parsed_rows_equals_the_list_path():

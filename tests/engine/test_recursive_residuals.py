@@ -123,3 +123,26 @@ def test_first_observations_have_no_recursive_residual():
     assert not state.solution().identifiable
     assert second.prediction == pytest.approx(4.0)
     assert second.residual == pytest.approx(0.5)
+
+
+@pytest.mark.parametrize("spec", [Spec(dim=3), Spec(dim=3, ridge=0.5), Spec(dim=3, forgetting=0.95),
+                                  Spec(dim=3, half_life=20.0)], ids=["ols", "ridge", "forgetting", "half_life"])
+def test_preview_is_the_step_update_then_reports(spec):
+    """State.preview gives the update's step bit for bit (start-up phase included) and changes nothing."""
+    from leastwise.engine import TimeOrderError
+
+    rng = np.random.default_rng(21)
+    state = State(spec)
+    t = 0.0
+    for i in range(120):
+        x = rng.standard_normal(3) * (0.0 if i == 1 else 1.0)  # a row with no information along it
+        y = float(x @ [1.0, -0.5, 2.0] + 0.1 * rng.standard_normal())
+        t += float(rng.exponential(2.0))
+        before = state.to_bytes()
+        seen = state.preview(x, y, t)
+        assert state.to_bytes() == before
+        assert state.update(x, y, t) == seen, i
+    before = state.to_bytes()
+    with pytest.raises(TimeOrderError):
+        state.preview(np.ones(3), 1.0, t - 1.0)
+    assert state.to_bytes() == before

@@ -230,6 +230,18 @@ class State:
 
         The state is unchanged when an error is raised.
         """
+        return self._absorb_one(*self._checked(x, y, t))
+
+    def preview(self, x: ArrayLike, y: float, t: float | None = None) -> Step:
+        """The step :meth:`update` would report for ``(x, y, t)``, bit for bit, without absorbing it.
+
+        Same checks and errors as :meth:`update`; the state is never changed
+        (a drift gate decides on it whether to apply the observation).
+        """
+        return self._look_ahead(*self._checked(x, y, t))[0]
+
+    def _checked(self, x: ArrayLike, y: float, t: float | None) -> tuple[np.ndarray, float, float | None, float]:
+        """``(x, y, t, decay)`` validated for :meth:`_absorb_one` (raises EngineError subclasses)."""
         if type(x) is np.ndarray and x.dtype == _FLOAT64 and x.ndim == 1 and x.shape[0] == self.spec.dim:
             xv = x  # fast path: already a float vector of the right length
             if not float(_nrm2(xv)) <= MAX_ABS_VALUE:  # NaN and inf fail too; dnrm2 cannot overflow
@@ -241,9 +253,9 @@ class State:
         else:
             yv = _check_scalar(y, "y")
         if t is None and self.spec.half_life is None:
-            return self._absorb_one(xv, yv, None, self.spec.forgetting)
+            return xv, yv, None, self.spec.forgetting
         tv = _check_time(t) if t is not None else None
-        return self._absorb_one(xv, yv, tv, self._decay_for(tv))
+        return xv, yv, tv, self._decay_for(tv)
 
     def update_many(
         self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None = None
@@ -336,37 +348,8 @@ class State:
     # ------------------------------------------------------------- internals
     def _absorb_one(self, x: np.ndarray, y: float, t: float | None, decay: float) -> Step:
         # Everything that can fail is computed before the state is touched.
+        step, scale = self._look_ahead(x, y, t, decay)
         d = self.dim
-        factor = self._factor
-        sigma = self._sigma if self._sigma >= 0.0 else self._sigma_now()
-        scale = self._scale_at(self.n + 1, t) if decay != 1.0 else self._scale  # decayed state = scale * factor
-        # u solves M^T u = x: x^T (f A)^{-1} x = u.u / scale^2 and x^T w = u.z (w is scale-free).
-        u = dtrsv(factor[:d, :d], x, trans=1)
-        # dnrm2 scales internally: no overflow warning when x lies along an unexcited direction.
-        norm_u = float(_nrm2(u))
-        # scale == 0 (a gap of over ~1074 half-lives) forgets everything: no information along x.
-        leverage = (norm_u / scale) ** 2 if scale > 0.0 and norm_u / scale < 1e150 else math.inf
-        recursive: float | None = None
-        lev: float | None = None
-        prediction = math.inf
-        if leverage <= LEVERAGE_LIMIT:  # False for NaN and inf too
-            # ``@``, not np.dot: the same ddot, but np.dot lets go of the interpreter lock for
-            # it, and winning the lock back from a busy event loop costs the writer thread
-            # tens of microseconds per call (tests/bench/engine.py, "gil" line).
-            prediction = float(u @ factor[:d, d])
-            lev = leverage
-        if not math.isfinite(prediction):
-            # No information along x yet: predict with the minimum-norm solution.
-            lev = None
-            previous = solve(factor, self.spec, self.prior_weight, self.weight_sum, None, False, self._scale)
-            with np.errstate(over="ignore", invalid="ignore"):
-                prediction = float(previous.coefficients @ x)
-            if not math.isfinite(prediction):
-                raise NonFiniteError("prediction outside the floating-point range; rescale the features")
-        residual = y - prediction
-        if lev is not None:
-            recursive = residual / math.sqrt(1.0 + lev)
-        standardized = recursive / sigma if (recursive is not None and sigma) else None
         # Mutations from here on.
         if decay == 0.0 or scale == 0.0 or scale < _RENORMALISE_BELOW:
             if decay == 0.0 or scale == 0.0:
@@ -402,7 +385,42 @@ class State:
         self._solution = None
         self._read = None
         self._sigma = -1.0
-        return Step(prediction, residual, lev, recursive, standardized, decay)
+        return step
+
+    def _look_ahead(self, x: np.ndarray, y: float, t: float | None, decay: float) -> tuple[Step, float]:
+        """The step of absorbing ``(x, y, t)`` and the scale the state would have after it; changes nothing."""
+        d = self.dim
+        factor = self._factor
+        sigma = self._sigma if self._sigma >= 0.0 else self._sigma_now()
+        scale = self._scale_at(self.n + 1, t) if decay != 1.0 else self._scale  # decayed state = scale * factor
+        # u solves M^T u = x: x^T (f A)^{-1} x = u.u / scale^2 and x^T w = u.z (w is scale-free).
+        u = dtrsv(factor[:d, :d], x, trans=1)
+        # dnrm2 scales internally: no overflow warning when x lies along an unexcited direction.
+        norm_u = float(_nrm2(u))
+        # scale == 0 (a gap of over ~1074 half-lives) forgets everything: no information along x.
+        leverage = (norm_u / scale) ** 2 if scale > 0.0 and norm_u / scale < 1e150 else math.inf
+        recursive: float | None = None
+        lev: float | None = None
+        prediction = math.inf
+        if leverage <= LEVERAGE_LIMIT:  # False for NaN and inf too
+            # ``@``, not np.dot: the same ddot, but np.dot lets go of the interpreter lock for
+            # it, and winning the lock back from a busy event loop costs the writer thread
+            # tens of microseconds per call (tests/bench/engine.py, "gil" line).
+            prediction = float(u @ factor[:d, d])
+            lev = leverage
+        if not math.isfinite(prediction):
+            # No information along x yet: predict with the minimum-norm solution.
+            lev = None
+            previous = solve(factor, self.spec, self.prior_weight, self.weight_sum, None, False, self._scale)
+            with np.errstate(over="ignore", invalid="ignore"):
+                prediction = float(previous.coefficients @ x)
+            if not math.isfinite(prediction):
+                raise NonFiniteError("prediction outside the floating-point range; rescale the features")
+        residual = y - prediction
+        if lev is not None:
+            recursive = residual / math.sqrt(1.0 + lev)
+        standardized = recursive / sigma if (recursive is not None and sigma) else None
+        return Step(prediction, residual, lev, recursive, standardized, decay), scale
 
     def _merge_span(self, rows: np.ndarray) -> None:
         lsb, top = value_span(rows)

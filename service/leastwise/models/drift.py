@@ -24,10 +24,9 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import orjson
-from scipy.linalg.blas import dnrm2, dtrsv
 
 from leastwise.drift import DriftConfig, DriftState, chow_predictive_test, wald_change
-from leastwise.engine import State, Step
+from leastwise.engine import EngineError, State, Step
 
 from .errors import FieldError
 
@@ -40,7 +39,6 @@ __all__ = ["ResidualMonitor", "drift_available", "DRIFT_DEFAULTS", "parse_drift"
 OK, WATCH, ALARM = "ok", "watch", "alarm"
 
 _MAGIC = b"LWRM"
-_FLOAT64 = np.dtype(np.float64)
 _HEAD = struct.Struct("<4sBBQQdddd")
 _LEN = struct.Struct("<I")
 
@@ -169,47 +167,16 @@ def _clean(value: Any) -> Any:
 def a_priori(state: State, x: np.ndarray, y: float, t: float | None) -> Step | None:
     """The step an update of ``state`` with ``(x, y, t)`` would report, without applying it.
 
-    Same formulas as the engine's update (recursive residual over the sigma before the
-    update); ``None`` when the residual cannot be standardised (no information along x,
-    or sigma not estimable).  Used only for the gate decision, which is then logged, so
-    replay never recomputes it.
+    :meth:`State.preview`: the very numbers the update would give. ``None`` when
+    the residual cannot be standardised (no information along x, or sigma not
+    estimable) or the engine refuses the observation. Used only for the gate
+    decision, which is then logged, so replay never recomputes the decision.
     """
-    spec = state.spec
-    d = spec.dim
-    half_life = spec.half_life
-    if half_life is None:
-        decay = float(spec.forgetting)
-    else:
-        last = state.last_time
-        decay = 1.0 if last is None or t is None else 2.0 ** (-(max(t, last) - last) / half_life)
-    if not decay > 0.0:
+    try:
+        step = state.preview(x, y, t)
+    except EngineError:
         return None
-    dof = state.weight_sum - d
-    if not dof > 0.0:
-        return None
-    factor = state.factor
-    R = factor[:d, :d]
-    zc = factor[:d, d]
-    rho = float(factor[d, d])
-    rss = rho * rho
-    if spec.ridge > 0.0 and state.prior_weight > 0.0:
-        w = dtrsv(R, zc)
-        rss -= state.prior_weight * spec.ridge * float(w @ w)
-    if not (rss > 0.0 and math.isfinite(rss)):
-        return None
-    sigma = math.sqrt(rss / dof)
-    u = dtrsv(R, x if type(x) is np.ndarray and x.dtype == _FLOAT64 else np.asarray(x, dtype=np.float64), trans=1)
-    nu = float(dnrm2(u))
-    lev = nu * nu / decay
-    if not lev <= 1e24:
-        return None
-    prediction = float(u @ zc)
-    residual = float(y) - prediction
-    recursive = residual / math.sqrt(1.0 + lev)
-    z = recursive / sigma
-    if not math.isfinite(z):
-        return None
-    return Step(prediction, residual, lev, recursive, z, decay)
+    return step if step.standardized_residual is not None else None
 
 
 def _information(R: np.ndarray, v: np.ndarray) -> float:

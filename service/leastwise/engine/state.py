@@ -250,6 +250,8 @@ class State:
             xv = self._check_vector(x)
         if type(y) is float and -MAX_ABS_VALUE <= y <= MAX_ABS_VALUE:
             yv = y  # fast path; NaN fails the comparison and takes the checked path
+        elif type(y) is np.float64 and -MAX_ABS_VALUE <= y <= MAX_ABS_VALUE:
+            yv = float(y)  # an element of a float array: the same value, as _check_scalar gives it
         else:
             yv = _check_scalar(y, "y")
         if t is None and self.spec.half_life is None:
@@ -349,7 +351,7 @@ class State:
     def _absorb_one(self, x: np.ndarray, y: float, t: float | None, decay: float) -> Step:
         # Everything that can fail is computed before the state is touched.
         step, scale = self._look_ahead(x, y, t, decay)
-        d = self.dim
+        d = self.spec.dim
         # Mutations from here on.
         if decay == 0.0 or scale == 0.0 or scale < _RENORMALISE_BELOW:
             if decay == 0.0 or scale == 0.0:
@@ -389,7 +391,7 @@ class State:
 
     def _look_ahead(self, x: np.ndarray, y: float, t: float | None, decay: float) -> tuple[Step, float]:
         """The step of absorbing ``(x, y, t)`` and the scale the state would have after it; changes nothing."""
-        d = self.dim
+        d = self.spec.dim
         factor = self._factor
         sigma = self._sigma if self._sigma >= 0.0 else self._sigma_now()
         scale = self._scale_at(self.n + 1, t) if decay != 1.0 else self._scale  # decayed state = scale * factor

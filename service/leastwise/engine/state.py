@@ -365,13 +365,16 @@ class State:
         self._scale = scale
         k = self._pending_n
         pending = self._pending
-        pending[k, :d] = x
-        pending[k, d] = y
-        if scale != 1.0:
-            pending[k] /= scale
+        if scale != 1.0:  # the row enters divided by the scale (elementwise, as an in-place division would)
+            np.divide(x, scale, out=pending[k, :d])
+            pending[k, d] = y / scale
+        else:
+            pending[k, :d] = x
+            pending[k, d] = y
         row = pending[k:k + 1]
-        # overwrite_b=0: LAPACK works on a copy, the buffered row stays for the Gram fold.
-        self._factor = _tpqrt(0, block_size(d + 1), self._factor, row, overwrite_a=1, overwrite_b=0)[0]
+        # Positional flags (keywords cost f2py ~0.4 us): overwrite_a=1, overwrite_b=0, so
+        # LAPACK works on a copy of the row, which stays in the buffer for the Gram fold.
+        self._factor = _tpqrt(0, block_size(d + 1), self._factor, row, 1, 0)[0]
         self._pending_n = k + 1
         self._read = None  # before a fold: it would reuse a read's update, which lacks this row
         if k + 1 == FOLD_ROWS:

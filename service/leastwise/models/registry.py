@@ -548,10 +548,10 @@ class Registry:
         previous one's prepared state) and become one write that advances the
         version once per request. Each answer carries its own observations'
         results and the model as committed by the group (version, n,
-        coefficients after the group's last request for that model). Nothing in memory changes before the commit;
-        a model whose write was rejected (another process wrote, or it was
-        reset or deleted meanwhile) answers its requests with ``_Stale`` and
-        they take the locked path.
+        coefficients after the group's last request for that model). Nothing
+        in memory changes before the commit; a model whose write was rejected
+        (another process wrote, or it was reset or deleted meanwhile) answers
+        its requests with ``_Stale`` and they take the locked path.
         """
         now = self.clock()
         tips: dict[int, _Tip] = {}

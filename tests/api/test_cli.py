@@ -29,6 +29,25 @@ def test_settings_from_env():
         Settings.from_env({"LEASTWISE_PORT": "abc"})
 
 
+def test_group_gather_setting_reaches_the_writer(tmp_path):
+    from leastwise.api.app import build_registry
+
+    url = f"sqlite:///{tmp_path / 'g.sqlite3'}"
+    s = Settings.from_env({"LEASTWISE_GROUP_GATHER_US": "0", "LEASTWISE_DATABASE": url})
+    assert s.group_gather_us == 0
+    registry = build_registry(s)
+    try:
+        assert registry._group_writer().gather_wait == 0.0  # gathering off
+    finally:
+        registry.close()
+    default = build_registry(Settings(database=url))
+    assert default.group_gather == 0.0005  # the default, 500 us
+    default.close()
+    for bad in ("-1", "100001"):
+        with pytest.raises(ValueError, match="group_gather_us"):
+            Settings.from_env({"LEASTWISE_GROUP_GATHER_US": bad})
+
+
 def test_demo_still_works():
     result = CliRunner().invoke(main, ["demo", "--readings", "200"])
     assert result.exit_code == 0, result.output

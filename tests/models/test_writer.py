@@ -35,34 +35,29 @@ async def _submit_while_busy(writer: GroupWriter, jobs: int) -> list[int]:
     return list(await asyncio.gather(*futures))
 
 
-def test_a_small_group_waits_for_what_the_loop_has_in_hand():
-    writer, groups = _recording_writer(gather_wait=5.0)
+def _run_while_busy(jobs: int, **options: float) -> tuple[_CountingWriter, list[list[int]]]:
+    """:func:`_submit_while_busy` on a fresh writer; every job must come back answered."""
+    writer, groups = _recording_writer(**options)
     try:
-        answers = asyncio.run(_submit_while_busy(writer, 6))
+        assert asyncio.run(_submit_while_busy(writer, jobs)) == list(range(jobs))
     finally:
         writer.close()
-    assert answers == list(range(6))
+    return writer, groups
+
+
+def test_a_small_group_waits_for_what_the_loop_has_in_hand():
+    writer, groups = _run_while_busy(6, gather_wait=5.0)
     assert groups == [[0, 1, 2, 3, 4, 5]]  # one transaction: the loop queued the rest before it let the writer go
     assert writer.gathered == 1
 
 
 def test_without_gathering_the_writer_starts_with_what_is_queued():
-    writer, groups = _recording_writer(gather_wait=0.0)
-    try:
-        answers = asyncio.run(_submit_while_busy(writer, 6))
-    finally:
-        writer.close()
-    assert answers == list(range(6))
+    _writer, groups = _run_while_busy(6, gather_wait=0.0)
     assert groups[0] == [0] and sorted(j for g in groups for j in g) == list(range(6))
 
 
 def test_gathering_is_skipped_when_enough_requests_are_queued():
-    writer, groups = _recording_writer(gather_wait=5.0, gather_below=1)
-    try:
-        answers = asyncio.run(_submit_while_busy(writer, 3))
-    finally:
-        writer.close()
-    assert answers == [0, 1, 2]
+    writer, groups = _run_while_busy(3, gather_wait=5.0, gather_below=1)
     assert groups[0] == [0] and writer.gathered == 0  # it did not wait for the loop
 
 

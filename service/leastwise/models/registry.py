@@ -396,7 +396,7 @@ class Registry:
             job = _Job(entry, model_id, config, observations)
             try:
                 self._group_writer().submit(job).wait()
-                return self._answer(config, job.state, job.results, job.applied, job.version)
+                return self._answer(job.results, job.applied, self._committed(config, job.state, job.version))
             except _Stale:
                 pass
         return self._observe_retry(entry, name, body)
@@ -449,7 +449,7 @@ class Registry:
             return await anyio.to_thread.run_sync(self._observe_retry, entry, name, body)
         if job.answer is not None:
             return job.answer
-        return self._answer(config, job.state, job.results, job.applied, job.version)
+        return self._answer(job.results, job.applied, self._committed(config, job.state, job.version))
 
     def _observe_optimistic(self, live: LiveModel, observations: list[Observation]) -> dict[str, Any]:
         now = self.clock()
@@ -608,7 +608,7 @@ class Registry:
             committed = shared.get(id(job.state))
             if committed is None:
                 committed = shared[id(job.state)] = self._committed(job.config, job.state, job.version)
-            job.answer = self._answer(job.config, job.state, job.results, job.applied, job.version, committed)
+            job.answer = self._answer(job.results, job.applied, committed)
 
     def _prepare_group(self, tickets: list[Ticket], tips: dict[int, "_Tip"], found: dict[tuple[int, str], int],
                        now: float) -> list[PendingWrite]:
@@ -687,15 +687,15 @@ class Registry:
             "sigma": sol.sigma if sol.sigma is None or math.isfinite(sol.sigma) else None,
         }
 
-    def _answer(self, config: ModelConfig, state: State, results: list[dict[str, Any]], applied: int,
-                version: int, committed: dict[str, Any] | None = None) -> dict[str, Any]:
-        """The observation answer: this request's results and the (committed) model at ``version``."""
+    @staticmethod
+    def _answer(results: list[dict[str, Any]], applied: int, committed: dict[str, Any]) -> dict[str, Any]:
+        """The observation answer: this request's results and the committed model (:meth:`_committed`)."""
         gated = sum(1 for r in results if r.get("status") == "gated")  # logged, not applied (drift gate)
         out = {
             "results": results,
             "applied": applied - gated,
             "duplicates": len(results) - applied,
-            **(committed if committed is not None else self._committed(config, state, version)),
+            **committed,
         }
         if gated:
             out["gated"] = gated
@@ -714,7 +714,7 @@ class Registry:
             if pending.checkpoint is not None:
                 live.checkpoint_seq, live.checkpoint_version = pending.new_seq, pending.new_version
         applied = len(pending.rows) if pending is not None else 0
-        return self._answer(live.config, live.read_view(), prepared.results, applied, live.version)
+        return self._answer(prepared.results, applied, self._committed(live.config, live.read_view(), live.version))
 
     def _commit(self, writes: list[PendingWrite], now: float) -> None:
         """Commit prepared writes in one transaction; raise :class:`_Stale` if any was rejected."""

@@ -20,7 +20,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike
 from scipy.linalg.blas import dnrm2 as _nrm2
-from scipy.linalg.blas import dtrsv
+from scipy.linalg.blas import dtrsm, dtrsv
+from scipy.linalg.lapack import dpotrf
 
 from .errors import DimensionError, NonFiniteError, TimeOrderError
 from scipy.linalg.lapack import dtpqrt as _tpqrt
@@ -48,6 +49,18 @@ _FLOAT64 = np.dtype(np.float64)
 
 #: The scale is renormalised (exactly, by a power of two) when it falls below this.
 _RENORMALISE_BELOW = 2.0**-128
+
+#: Bound on the sum of the leverages ``x_i^T A^{-1} x_i`` of a block's rows with respect
+#: to the state before the block (see :meth:`State.update_block`). The innovations
+#: matrix ``S = I + X A^{-1} X^T`` then has 2-norm condition at most ``1 + bound``
+#: (its eigenvalues lie in ``[1, 1 + trace]``), so its Cholesky factorisation and the
+#: triangular solve for the recursive residuals are well conditioned; large leverages
+#: (the warm-up, a new direction) take the row-by-row update instead.
+BLOCK_LEVERAGE_SUM = 4.0
+#: Most rows in one block (the innovations matrix is ``m x m``).
+BLOCK_ROWS = 64
+#: Fewest rows worth a block; shorter runs take single updates.
+MIN_BLOCK_ROWS = 4
 
 
 
@@ -240,6 +253,11 @@ class State:
         """
         return self._look_ahead(*self._checked(x, y, t))[0]
 
+    def decays(self, times: ArrayLike | None, count: int) -> list[float]:
+        """The decays ``f`` that ``count`` observations made at ``times`` would get, in order (nothing changes)."""
+        t = None if times is None else np.asarray(times, dtype=np.float64).reshape(-1)
+        return self._decays_for(t, count)
+
     def _checked(self, x: ArrayLike, y: float, t: float | None) -> tuple[np.ndarray, float, float | None, float]:
         """``(x, y, t, decay)`` validated for :meth:`_absorb_one` (raises EngineError subclasses)."""
         if type(x) is np.ndarray and x.dtype == _FLOAT64 and x.ndim == 1 and x.shape[0] == self.spec.dim:
@@ -272,6 +290,153 @@ class State:
         for i in range(x.shape[0]):
             steps.append(self._absorb_one(x[i], float(y[i]), None if t is None else float(t[i]), decays[i]))
         return steps
+
+    def update_block(
+        self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None = None
+    ) -> list[Step]:
+        """Absorb k observations in order, with blocked arithmetic: the steps and state of :meth:`update_many` to rounding.
+
+        For a run of ``m`` rows with scaled rows ``X~`` (row ``i`` divided by
+        the scale after it, as :meth:`update` does) and the factor ``[[R, z],
+        [0, rho]]`` before them, one triangular solve ``U = R^{-T} X~^T`` gives
+        every leverage ``||u_i||^2`` and a priori residual ``y~_i - u_i^T z``
+        with respect to the state before the run. The sequential steps follow
+        from the Cholesky factor of the innovations matrix
+        ``S = I + U^T U = L L^T``: the recursive residuals are the
+        innovations of the block, orthonormalised in order (Gram-Schmidt on
+        the innovations, as in Kailath, Sayed & Hassibi, *Linear Estimation*,
+        2000; the reference is cited from memory):
+
+            recursive residuals  w~ = L^{-1} (y~ - U^T z)
+            leverages            lev_i = ||u_i||^2 - sum_{j<i} L_ij^2   (= L_ii^2 - 1)
+            rho_i^2              = rho_{i-1}^2 + w~_i^2
+
+        and the rows are then absorbed by one blocked Householder update
+        (LAPACK ``dtpqrt``), in the same row buffer :meth:`update` fills. A
+        run is cut where the sum of its leverages would exceed
+        ``BLOCK_LEVERAGE_SUM`` (so ``cond(S) <= 1 + BLOCK_LEVERAGE_SUM``), before
+        a renormalisation or a zero decay, and at ``BLOCK_ROWS`` rows; rows
+        outside such runs (the warm-up, a ridge prior, whose sigma needs every
+        step's coefficients, a state of storage format 1) take :meth:`update`.
+
+        Deterministic: the same state and rows give the same bits, so a log
+        that records which rows were absorbed together replays bit for bit.
+        Every row is checked first, so an error leaves the state unchanged.
+        """
+        x, y, t = self._check_batch(rows, ys, times)
+        decays = self._decays_for(t, x.shape[0])
+        steps: list[Step] = []
+        k = x.shape[0]
+        i = 0
+        single_until = 0  # after a run too short for a block, a few single updates before the next try
+        while i < k:
+            taken = 0
+            if i >= single_until and k - i >= MIN_BLOCK_ROWS:
+                taken = self._absorb_run(x, y, t, decays, i, steps)
+                if not taken:
+                    single_until = i + MIN_BLOCK_ROWS
+            if not taken:
+                steps.append(self._absorb_one(x[i], float(y[i]), None if t is None else float(t[i]), decays[i]))
+                taken = 1
+            i += taken
+        return steps
+
+    def _absorb_run(self, x: np.ndarray, y: np.ndarray, t: np.ndarray | None, decays: list[float], start: int,
+                    steps: list[Step]) -> int:
+        """Absorb a run of rows from ``start`` as one block (see :meth:`update_block`); the rows taken, 0 if none."""
+        if self.spec.ridge != 0.0 or self._base is None or self.n == 0:
+            return 0
+        d = self.dim
+        n0 = self.n
+        stop = min(x.shape[0], start + BLOCK_ROWS)
+        # Each row's scale as _absorb_one computes it; the run ends before a row that would
+        # renormalise the scale or forget everything.
+        scales: list[float] = []
+        scale = self._scale
+        for j in range(start, stop):
+            if decays[j] != 1.0:
+                # A zero decay (a gap of over ~1075 half-lives) gives a scale below the bound too.
+                scale = self._scale_at(n0 + 1 + j - start, None if t is None else float(t[j]))
+                if not scale >= _RENORMALISE_BELOW:
+                    break
+            scales.append(scale)
+        m = len(scales)
+        if m < MIN_BLOCK_ROWS:
+            return 0
+        block = np.empty((m, d + 1), dtype=np.float64)
+        block[:, :d] = x[start:start + m]
+        block[:, d] = y[start:start + m]
+        c = np.array(scales)
+        if not (c == 1.0).all():
+            block /= c[:, None]  # elementwise, as _absorb_one divides a row
+        factor = self._factor
+        # U = R^{-T} X~^T: column i is the u of row i against the state before the run.
+        u = dtrsm(1.0, factor[:d, :d], block[:, :d].T, trans_a=1)
+        lev0 = np.einsum("ij,ij->j", u, u)
+        # The longest prefix whose leverages sum to at most the bound (NaN or inf end it too).
+        within = np.cumsum(lev0) <= BLOCK_LEVERAGE_SUM
+        m = int(within.argmin()) if not within.all() else m
+        if m < MIN_BLOCK_ROWS:
+            return 0
+        if m < len(scales):
+            u, lev0, block, c = u[:, :m], lev0[:m], block[:m], c[:m]
+        innovations = u.T @ u
+        innovations.flat[:: m + 1] += 1.0
+        chol, info = dpotrf(innovations, lower=1, clean=1, overwrite_a=1)
+        if info != 0:  # pragma: no cover - S >= I is positive definite; only on a LAPACK failure
+            return 0
+        apriori = block[:, d] - u.T @ factor[:d, d]
+        rec = dtrsv(chol, apriori, lower=1)  # the scaled recursive residuals
+        diag = np.diagonal(chol)
+        below = np.tril(chol, -1)
+        lev = np.maximum(lev0 - np.einsum("ij,ij->i", below, below), 0.0)
+        recursive = rec * c
+        observed = y[start:start + m]
+        predicted = observed - recursive * diag  # the a priori residual is L_ii times the recursive one
+        residual = observed - predicted  # as update() reports it: y minus the prediction, exactly
+        rho2 = float(factor[d, d]) ** 2 + np.cumsum(rec * rec)  # rho~_i^2 after row i (scaled)
+        # Sigma before each row: the current one, then from rho~^2, the scale and the weights.
+        sigma_first = self._sigma_now()
+        prior_weight, weight_sum, weight_sq_sum = self.prior_weight, self.weight_sum, self.weight_sq_sum
+        rec_l, res_l, lev_l, pred_l = recursive.tolist(), residual.tolist(), lev.tolist(), predicted.tolist()
+        rss_l = (rho2 * (c * c)).tolist()
+        sigma = sigma_first
+        for j in range(m):
+            f = decays[start + j]
+            r = rec_l[j]
+            steps.append(Step(pred_l[j], res_l[j], lev_l[j], r, r / sigma if sigma else None, f))
+            prior_weight *= f
+            weight_sum = f * weight_sum + 1.0
+            weight_sq_sum = f * f * weight_sq_sum + 1.0
+            dof = weight_sum - d
+            rss = rss_l[j]
+            sigma = math.sqrt(rss / dof) if dof > 0.0 and rss > 0.0 and math.isfinite(rss) else None
+        # Absorb: the rows enter the buffer as single updates would put them; full buffers fold.
+        self._read = None
+        pos = 0
+        while pos < m:
+            filled = self._pending_n
+            take = min(FOLD_ROWS - filled, m - pos)
+            self._pending[filled:filled + take] = block[pos:pos + take]
+            self._pending_n = filled + take
+            pos += take
+            if self._pending_n == FOLD_ROWS:
+                self.n = n0 + pos - 1  # as _absorb_one folds before it counts its row
+                self._fold_all_pending()
+        filled = self._pending_n
+        if filled:
+            self._factor = absorb_rows(np.array(self._base, order="F"), np.array(self._pending[:filled], order="F"))
+            self._read = np.array(self._factor, order="F")  # what _read_factor() would compute
+        self.n = n0 + m
+        self._scale = float(c[-1])
+        self.prior_weight, self.weight_sum, self.weight_sq_sum = prior_weight, weight_sum, weight_sq_sum
+        if t is not None:
+            if self.first_time is None:
+                self.first_time = float(t[start])
+            self.last_time = float(t[start + m - 1])
+        self._solution = None
+        self._sigma = -1.0
+        return m
 
     def absorb_block(self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None = None) -> None:
         """Absorb many observations at once (backfills): the same state as ``update_many``.

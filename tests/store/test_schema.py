@@ -6,7 +6,7 @@ from sqlalchemy import inspect, text
 
 from leastwise.store import Store, migrate
 
-HEAD = "0002"  # the newest revision in service/leastwise/store/migrations/versions
+HEAD = "0003"  # the newest revision in service/leastwise/store/migrations/versions
 
 
 def test_migrations_create_tables_and_version(sqlite_url):
@@ -36,24 +36,46 @@ def test_postgres_schema(postgres_url):
     store.close()
 
 
-def test_upgrade_from_the_first_release(sqlite_url):
-    # A database created by release 0001 upgrades in place and keeps its rows.
+def _database_at(url: str, revision: str, *statements: tuple[str, dict]) -> None:
+    """Create a database at an older ``revision`` and run ``statements`` in it, as that release would."""
     from alembic import command
     from sqlalchemy import create_engine
 
     from leastwise.store.database import alembic_config
 
-    engine = create_engine(sqlite_url)
+    engine = create_engine(url)
     cfg = alembic_config()
     with engine.connect() as conn:
         cfg.attributes["connection"] = conn
-        command.upgrade(cfg, "0001")
-        conn.execute(text("INSERT INTO models (name, config, version, seq, epoch, created) "
-                          "VALUES ('old', '{}', 1, 0, 0, 0.0)"))
+        command.upgrade(cfg, revision)
+        for sql, params in statements:
+            conn.execute(text(sql), params)
         conn.commit()
     engine.dispose()
+
+
+def test_upgrade_from_the_first_release(sqlite_url):
+    # A database created by release 0001 upgrades in place and keeps its rows.
+    _database_at(sqlite_url, "0001", ("INSERT INTO models (name, config, version, seq, epoch, created) "
+                                      "VALUES ('old', '{}', 1, 0, 0, 0.0)", {}))
     store = Store.open(sqlite_url)
     with store.read() as conn:
         assert conn.execute(text("SELECT name FROM models")).scalar_one() == "old"
         assert conn.execute(text("SELECT version_num FROM alembic_version")).scalar_one() == HEAD
+    store.close()
+
+
+def test_upgrade_to_log_blocks_keeps_the_log(sqlite_url):
+    # Revision 0003 adds observations.block; rows logged before it read back as absorbed one by one.
+    from leastwise.store.drift import log_rows_after
+
+    _database_at(sqlite_url, "0002",
+                 ("INSERT INTO models (id, name, config, version, seq, epoch, created) "
+                  "VALUES (1, 'old', '{}', 2, 1, 0, 0.0)", {}),
+                 ("INSERT INTO observations (model_id, seq, x, y, t, key, status, received) "
+                  "VALUES (1, 1, :x, 2.5, NULL, 'k1', 'applied', 0.0)", {"x": b"\x00" * 8}))
+    store = Store.open(sqlite_url)
+    with store.read() as conn:
+        rows = list(log_rows_after(conn, 1, 0))
+    assert [(r.seq, r.y, r.key, r.block) for r in rows] == [(1, 2.5, "k1", None)]
     store.close()

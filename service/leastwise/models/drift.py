@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import math
 import struct
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from dataclasses import asdict, fields
 from typing import TYPE_CHECKING, Any
 
@@ -322,6 +322,38 @@ class ResidualMonitor:
                 return gated, "gated", self.record_gated(gated, seq)
         step = state.update(x, y, t)
         return step, "applied", self.observe(step, seq, state)
+
+    def advance_block(self, state: State, x: np.ndarray, ys: list[float], times: list[float] | None,
+                      seqs: list[int]) -> list[tuple[Step, str, dict[str, Any] | None, int]]:
+        """Update ``state`` with the rows in engine blocks (:meth:`State.update_block`) and feed each step.
+
+        Returns ``(step, "applied", change, block)`` per row, ``block`` being the seq of the
+        first row of the engine block it went in with (the log records it, so replay repeats
+        the blocks). Under forgetting a block ends at each row where the excitation window
+        rolls (:meth:`_roll` reads the state after that row). No gate: callers take
+        :meth:`advance` per observation when one is configured.
+        """
+        m = len(seqs)
+        ends = [m]
+        if self.forgets:
+            ends = []
+            roll, primed = self.roll_decay, self.lag_factor is not None
+            for j, f in enumerate(state.decays(times, m)):
+                roll *= f
+                if roll <= 0.5 or not primed:
+                    ends.append(j + 1)
+                    roll, primed = 1.0, True
+            if not ends or ends[-1] != m:
+                ends.append(m)
+        out: list[tuple[Step, str, dict[str, Any] | None, int]] = []
+        start = 0
+        for end in ends:
+            steps = state.update_block(x[start:end], ys[start:end], None if times is None else times[start:end])
+            block = seqs[start]
+            for step, seq in zip(steps, seqs[start:end]):
+                out.append((step, "applied", self.observe(step, seq, state), block))
+            start = end
+        return out
 
     def take_events(self) -> list[dict[str, Any]]:
         out, self.events = self.events, []
@@ -689,6 +721,34 @@ def _event(change: dict[str, Any]) -> dict[str, Any]:
             "since": top["since"] if top else None, "reasons": reasons}
 
 
+def replayed_steps(state: State, rows: Iterable[Any], x_row: Any) -> Iterator[tuple[Any, Step | None]]:
+    """Apply the applied log rows to ``state`` as they were applied live; yield ``(row, step)`` in order.
+
+    Rows logged with one ``block`` mark go through :meth:`State.update_block` together
+    (their steps are yielded once the block is in); gated rows yield ``None`` and are
+    not applied, with ``state`` as it was just before them.
+    """
+    block: list[Any] = []
+    for r in rows:
+        if block and r.block != block[0].block:
+            yield from _replay_block(state, block, x_row)
+            block = []
+        if r.status != "applied":
+            yield r, None
+        elif r.block is not None:
+            block.append(r)
+        else:
+            yield r, state.update(x_row(r.x), r.y, r.t)
+    if block:
+        yield from _replay_block(state, block, x_row)
+
+
+def _replay_block(state: State, block: list[Any], x_row: Any) -> Iterator[tuple[Any, Step]]:
+    times = None if block[0].t is None else [r.t for r in block]
+    steps = state.update_block(np.array([x_row(r.x) for r in block]), [r.y for r in block], times)
+    return zip(block, steps)
+
+
 def replay(state: State, monitor: ResidualMonitor, rows: Iterable[Any], x_row: Any) -> int | None:
     """Re-apply log rows (applied and gated) to ``state`` and ``monitor``; returns the last seq.
 
@@ -696,12 +756,12 @@ def replay(state: State, monitor: ResidualMonitor, rows: Iterable[Any], x_row: A
     so the monitor reaches exactly the counts it had.  Events are not produced again.
     """
     last = None
-    for r in rows:
-        if r.status == "gated":
-            step = a_priori(state, x_row(r.x), r.y, r.t)
-            monitor.record_gated(step if step is not None else Step(0.0, 0.0, None, None, None, 1.0), r.seq)
+    for r, step in replayed_steps(state, rows, x_row):
+        if step is None:
+            gated = a_priori(state, x_row(r.x), r.y, r.t)
+            monitor.record_gated(gated if gated is not None else Step(0.0, 0.0, None, None, None, 1.0), r.seq)
         else:
-            monitor.observe(state.update(x_row(r.x), r.y, r.t), r.seq, state)
+            monitor.observe(step, r.seq, state)
         last = r.seq
     monitor.events.clear()
     return last
@@ -793,6 +853,10 @@ def move_reference(snapshot_id: int | None, name: str):
     return make, hook
 
 
+class _Unavailable(Exception):
+    """The history cannot be recomputed (the message says why)."""
+
+
 def history(conn: Any, live: Any, limit: int = 200_000) -> dict[str, Any]:
     """The batch BDE CUSUM and CUSUM of squares with their lines since the reference point.
 
@@ -814,19 +878,26 @@ def history(conn: Any, live: Any, limit: int = 200_000) -> dict[str, Any]:
     state = State.from_bytes(cp.state)
     seqs: list[int] = []
     ws: list[float] = []
-    expected = cp.seq
-    for r in drift_store.log_rows_after(conn, live.id, cp.seq, upto=live.seq):
-        expected += 1
-        if r.seq != expected:
-            return {"available": False, "reason": "log rows since the reference point were compacted away"}
-        if len(seqs) >= limit:
-            return {"available": False, "reason": f"more than {limit} observations since the reference point"}
-        if r.status != "applied":
-            continue
-        step = state.update(np.frombuffer(r.x, dtype="<f8"), r.y, r.t)
-        if step.recursive_residual is not None:
-            seqs.append(r.seq)
-            ws.append(step.recursive_residual)
+
+    def contiguous(rows: Iterable[Any]) -> Iterator[Any]:
+        expected, applied = cp.seq, 0
+        for r in rows:
+            expected += 1
+            if r.seq != expected:
+                raise _Unavailable("log rows since the reference point were compacted away")
+            applied += r.status == "applied"
+            if applied > limit:
+                raise _Unavailable(f"more than {limit} observations since the reference point")
+            yield r
+
+    try:
+        logged = contiguous(drift_store.log_rows_after(conn, live.id, cp.seq, upto=live.seq))
+        for r, step in replayed_steps(state, logged, lambda b: np.frombuffer(b, dtype="<f8")):
+            if step is not None and step.recursive_residual is not None:
+                seqs.append(r.seq)
+                ws.append(step.recursive_residual)
+    except _Unavailable as exc:
+        return {"available": False, "reason": str(exc)}
     m = len(ws)
     out: dict[str, Any] = {"available": True, "m": m, "seq": seqs, "recursive_residuals": ws,
                            "approximate": mon.forgets}

@@ -41,7 +41,7 @@ import anyio.to_thread
 import numpy as np
 from sqlalchemy.exc import IntegrityError
 
-from leastwise.engine import State
+from leastwise.engine import State, Step
 from leastwise.store import CheckpointRow, LogRow, PendingWrite, Store
 from leastwise.store import queries as q
 from leastwise.store import drift as drift_store
@@ -507,9 +507,10 @@ class Registry:
         """
         half_life = config.half_life is not None
         last_t = state.last_time
-        results: list[dict[str, Any]] = []
+        results: list[dict[str, Any] | None] = []
         rows: list[LogRow] = []
         batch_keys: dict[str, int] = {}
+        admitted: list[tuple[int, Observation, float | None, int]] = []  # (result index, observation, t, seq)
         many = len(observations) > 1
         for i, o in enumerate(observations):
             key = o.key
@@ -526,10 +527,23 @@ class Registry:
                 last_t = t
             # A gap of over ~1074 half-lives decays the past to weight 0: the engine then starts afresh.
             seq += 1
-            step, status, change = monitor.advance(state, o.x, o.y, t, seq)  # drift hook: gate, update, detectors
             if key is not None:
                 batch_keys[key] = seq
-            rows.append(LogRow(seq, _x_bytes(o.x), o.y, t, key, status, now))
+            admitted.append((len(results), o, t, seq))
+            results.append(None)
+        timed = sum(1 for a in admitted if a[2] is not None)
+        outcomes: Iterable[tuple[Step, str, dict[str, Any] | None, int | None]]
+        if len(admitted) > 1 and monitor.settings.get("gate") is None and timed in (0, len(admitted)):
+            # Engine blocks (State.update_block); the log marks their rows, so replay repeats them.
+            outcomes = monitor.advance_block(
+                state, np.array([a[1].x for a in admitted]), [a[1].y for a in admitted],
+                [a[2] for a in admitted] if timed else None, [a[3] for a in admitted])
+        else:
+            # drift hook per observation: gate, update, detectors
+            outcomes = (monitor.advance(state, o.x, o.y, t, seq) + (None,) for _, o, t, seq in admitted)
+        for (index, o, t, seq), (step, status, change, block) in zip(admitted, outcomes):
+            key = o.key
+            rows.append(LogRow(seq, _x_bytes(o.x), o.y, t, key, status, now, block))
             result = step_view(step, seq, t)
             if status != "applied":
                 result["status"] = status
@@ -537,8 +551,8 @@ class Registry:
                 result["drift"] = change
             if key is not None:
                 result["key"] = key
-            results.append(result)
-        return results, rows, seq, batch_keys
+            results[index] = result
+        return results, rows, seq, batch_keys  # type: ignore[return-value]
 
     # ------------------------------------------------------------ group commit (writer thread)
     def _run_group(self, tickets: list[Ticket]) -> None:

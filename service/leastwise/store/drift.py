@@ -69,12 +69,12 @@ def get_reference(conn: Connection, model_id: int) -> dict[str, Any] | None:
 def log_rows_after(conn: Connection, model_id: int, seq: int, upto: int | None = None) -> Iterator[LogRow]:
     """Logged rows (applied and gated) with ``seq > seq`` (and ``<= upto``), in order, with their status."""
     c = observations.c
-    query = (select(c.seq, c.x, c.y, c.t, c.key, c.status)
+    query = (select(c.seq, c.x, c.y, c.t, c.key, c.status, c.block)
              .where(c.model_id == model_id, c.seq > seq, c.status.in_(LOGGED)).order_by(c.seq))
     if upto is not None:
         query = query.where(c.seq <= upto)
-    for seq_, x, y, t, key, status in conn.execute(query):
-        yield LogRow(seq_, bytes(x), y, t, key, status)
+    for seq_, x, y, t, key, status, block in conn.execute(query):
+        yield LogRow(seq_, bytes(x), y, t, key, status, block=block)
 
 
 def checkpoint_at(conn: Connection, model_id: int, version: int) -> CheckpointRow | None:

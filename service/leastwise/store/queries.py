@@ -41,6 +41,8 @@ class LogRow:
     key: str | None
     status: str = "applied"
     received: float = 0.0
+    #: seq of the first row of the block the engine absorbed this row with; None: on its own
+    block: int | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -158,14 +160,15 @@ def insert_checkpoint(conn: Connection, model_id: int, cp: CheckpointRow, create
 def log_after(conn: Connection, model_id: int, seq: int, upto: int | None = None) -> Iterator[LogRow]:
     """Applied log rows with ``seq > seq`` (and ``<= upto``), in order."""
     query = (
-        select(observations.c.seq, observations.c.x, observations.c.y, observations.c.t, observations.c.key)
+        select(observations.c.seq, observations.c.x, observations.c.y, observations.c.t, observations.c.key,
+               observations.c.block)
         .where(observations.c.model_id == model_id, observations.c.seq > seq, observations.c.status == "applied")
         .order_by(observations.c.seq)
     )
     if upto is not None:
         query = query.where(observations.c.seq <= upto)
-    for seq_, x, y, t, key in conn.execute(query):  # unpacked: ``Row.t`` is a Row attribute, not the column
-        yield LogRow(seq_, bytes(x), y, t, key)
+    for seq_, x, y, t, key, block in conn.execute(query):  # unpacked: ``Row.t`` is a Row attribute, not the column
+        yield LogRow(seq_, bytes(x), y, t, key, block=block)
 
 
 def find_keys(conn: Connection, model_id: int, keys: Iterable[str]) -> dict[str, int]:
@@ -261,7 +264,8 @@ def find_keys_many(conn: Connection, pairs: Iterable[tuple[int, str]]) -> dict[t
     return found
 
 
-_INSERT_LOG = "INSERT INTO observations (model_id, seq, x, y, t, key, status, received) VALUES (?,?,?,?,?,?,?,?)"
+_INSERT_LOG = ("INSERT INTO observations (model_id, seq, x, y, t, key, status, received, block) "
+               "VALUES (?,?,?,?,?,?,?,?,?)")
 _INSERT_KEY = "INSERT INTO idempotency_keys (model_id, key, seq) VALUES (?,?,?)"
 _BUMP = "UPDATE models SET version = ?, seq = ? WHERE id = ?"
 
@@ -299,7 +303,7 @@ def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) 
                 continue
             mid = w.model_id
             for r in w.rows:
-                log_rows.append((mid, r.seq, r.x, r.y, r.t, r.key, r.status, r.received))
+                log_rows.append((mid, r.seq, r.x, r.y, r.t, r.key, r.status, r.received, r.block))
                 if r.key is not None:
                     key_rows.append((mid, r.key, r.seq))
             current[mid] = w.new_version

@@ -65,6 +65,8 @@ observations = Table(
     Column("key", String(200), nullable=True),
     Column("status", String(16), nullable=False),
     Column("received", Double, nullable=False),
+    # seq of the first row of the block this row was absorbed with (NULL: absorbed on its own)
+    Column("block", BigInteger, nullable=True),
 )
 
 checkpoints = Table(

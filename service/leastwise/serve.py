@@ -76,6 +76,20 @@ def check_host(host: str, database: str | None = None) -> None:
     )
 
 
+def single_threaded_blas() -> None:
+    """Keep BLAS and LAPACK to the calling thread.
+
+    The service's concurrency is its own (the event loop and the writer thread);
+    its matrices are at most 129 x 129. Left to itself, OpenBLAS runs products
+    and triangular solves from d = 64 up on extra threads that spin while they
+    wait: at d = 64 that doubled the CPU per observation POST (537 against 266 us,
+    ``tests/bench/service.py``).
+    """
+    from threadpoolctl import threadpool_limits
+
+    threadpool_limits(limits=1, user_api="blas")
+
+
 def run(settings: Settings) -> None:
     """Open the database (migrating it) and serve until interrupted."""
     import uvicorn
@@ -84,6 +98,7 @@ def run(settings: Settings) -> None:
 
     check_host(settings.host, settings.database)
     setup_logging(settings.log_level)
+    single_threaded_blas()
     app = create_app(settings)
     # Everything built so far (the framework, the schemas, the routes) lives as long as the process:
     # move it out of the collector's sight, so full collections stay short under load (p99).

@@ -51,3 +51,18 @@ def test_group_gather_setting_reaches_the_writer(tmp_path):
 def test_demo_still_works():
     result = CliRunner().invoke(main, ["demo", "--readings", "200"])
     assert result.exit_code == 0, result.output
+
+
+def test_serve_keeps_blas_to_one_thread():
+    # The limit as threadpoolctl itself reports it for every BLAS library numpy and scipy loaded.
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    from leastwise.serve import single_threaded_blas
+
+    import numpy  # noqa: F401 - loads the BLAS library
+    import scipy.linalg  # noqa: F401
+
+    with threadpool_limits(limits=None):  # restored afterwards: other tests keep their BLAS threads
+        single_threaded_blas()
+        blas = [pool for pool in threadpool_info() if pool["user_api"] == "blas"]
+        assert blas and all(pool["num_threads"] == 1 for pool in blas)

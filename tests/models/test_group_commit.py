@@ -184,8 +184,8 @@ def test_a_bad_request_in_a_group_does_not_affect_the_others(sqlite_url):
 
 
 def test_a_request_failing_half_way_drops_its_models_part_of_the_group(sqlite_url, monkeypatch):
-    """Single observations chain on the group's working copy in place; one that fails after changing it
-    must not leave the change behind: the model's other requests are retried on their own."""
+    """A group applies its model's observations together on one working copy; when that fails half-way
+    nothing of it is kept: the model's requests are retried one by one, and only the failing one fails."""
     import asyncio
 
     from leastwise.models.drift import ResidualMonitor
@@ -193,15 +193,15 @@ def test_a_request_failing_half_way_drops_its_models_part_of_the_group(sqlite_ur
     reg = Registry(Store.open(sqlite_url))
     reg.create("m", CONFIG)
     reg.observe("m", {"x": [1.0, 0.0, 0.0], "y": 1.0, "key": "first"})
-    original = ResidualMonitor.advance
+    original = ResidualMonitor.observe
 
-    def advance(self, state, x, y, t, seq):  # noqa: ANN001
-        out = original(self, state, x, y, t, seq)
-        if y == 666.0:
+    def observe(self, step, seq=None, state=None):  # noqa: ANN001
+        out = original(self, step, seq, state)
+        if abs(step.residual) > 100.0:  # the observation with y = 666, after the engine applied it
             raise RuntimeError("failed after the update")
         return out
 
-    monkeypatch.setattr(ResidualMonitor, "advance", advance)
+    monkeypatch.setattr(ResidualMonitor, "observe", observe)
     retries = []
     plain_retry = Registry._observe_retry
     monkeypatch.setattr(Registry, "_observe_retry", lambda self, *a: retries.append(1) or plain_retry(self, *a))

@@ -164,10 +164,16 @@ class _Tip:
     version: int
     seq: int
     checkpoint_seq: int
+    last_time: float | None  # of the last observation admitted so far
+    admitted: list["_Admitted"] = field(default_factory=list)
     rows: list[LogRow] = field(default_factory=list)
     jobs: list[Ticket] = field(default_factory=list)
     write: PendingWrite | None = None
-    owned: bool = False  # state and monitor are this group's working copies (not the live objects)
+
+
+#: An observation admitted for applying: (its request's results, its index there, the observation, t, seq).
+_Admitted = tuple[list[dict[str, Any]], int, Observation, "float | None", int]
+_PLACEHOLDER: dict[str, Any] = {}  # a result slot until the observation is applied
 
 
 def _x_bytes(row: np.ndarray) -> bytes:
@@ -505,12 +511,28 @@ class Registry:
 
         Returns the per-observation results, the log rows, the new seq and the keys applied here.
         """
+        admitted: list[_Admitted] = []
+        results, seq, keys, _last = self._admit(config, state.last_time, observations, known, seq, now, admitted)
+        rows = self._absorb(state, monitor, admitted, now)
+        return results, rows, seq, keys
+
+    @staticmethod
+    def _admit(config: ModelConfig, last_t: float | None, observations: list[Observation], known: dict[str, int],
+               seq: int, now: float, admitted: list["_Admitted"]
+               ) -> tuple[list[dict[str, Any]], int, dict[str, int], float | None]:
+        """Sort one request's observations into duplicates and ones to apply; nothing is applied yet.
+
+        ``last_t`` is the time of the last observation before this request, ``known`` the keys
+        seen before it, ``seq`` the last seq. Appends ``(results, index, observation, t, seq)``
+        to ``admitted`` for each observation to apply (its result, at ``results[index]``, is
+        filled in by :meth:`_absorb`). Returns the results (duplicates answered), the seq, the
+        keys applied here and the last time after the request. Raises :class:`InvalidInput`
+        for a time going backwards, before anything is appended.
+        """
         half_life = config.half_life is not None
-        last_t = state.last_time
-        results: list[dict[str, Any] | None] = []
-        rows: list[LogRow] = []
+        results: list[dict[str, Any]] = []
+        mine: list[_Admitted] = []
         batch_keys: dict[str, int] = {}
-        admitted: list[tuple[int, Observation, float | None, int]] = []  # (result index, observation, t, seq)
         many = len(observations) > 1
         for i, o in enumerate(observations):
             key = o.key
@@ -529,19 +551,31 @@ class Registry:
             seq += 1
             if key is not None:
                 batch_keys[key] = seq
-            admitted.append((len(results), o, t, seq))
-            results.append(None)
-        timed = sum(1 for a in admitted if a[2] is not None)
+            mine.append((results, len(results), o, t, seq))
+            results.append(_PLACEHOLDER)
+        admitted.extend(mine)
+        return results, seq, batch_keys, last_t
+
+    @staticmethod
+    def _absorb(state: State, monitor: ResidualMonitor, admitted: list["_Admitted"], now: float) -> list[LogRow]:
+        """Apply admitted observations (of one model, in seq order) and fill in their results; the log rows.
+
+        Without a drift gate they go through the engine's blocked update
+        (:meth:`ResidualMonitor.advance_block`), whose blocks the log records so
+        replay repeats them; with one, observation by observation, since each
+        gate decision depends on the state the previous one left.
+        """
+        rows: list[LogRow] = []
+        timed = sum(1 for a in admitted if a[3] is not None)
         outcomes: Iterable[tuple[Step, str, dict[str, Any] | None, int | None]]
         if len(admitted) > 1 and monitor.settings.get("gate") is None and timed in (0, len(admitted)):
-            # Engine blocks (State.update_block); the log marks their rows, so replay repeats them.
             outcomes = monitor.advance_block(
-                state, np.array([a[1].x for a in admitted]), [a[1].y for a in admitted],
-                [a[2] for a in admitted] if timed else None, [a[3] for a in admitted])
+                state, np.array([a[2].x for a in admitted]), [a[2].y for a in admitted],
+                [a[3] for a in admitted] if timed else None, [a[4] for a in admitted])
         else:
             # drift hook per observation: gate, update, detectors
-            outcomes = (monitor.advance(state, o.x, o.y, t, seq) + (None,) for _, o, t, seq in admitted)
-        for (index, o, t, seq), (step, status, change, block) in zip(admitted, outcomes):
+            outcomes = (monitor.advance(state, o.x, o.y, t, seq) + (None,) for _, _, o, t, seq in admitted)
+        for (results, index, o, t, seq), (step, status, change, block) in zip(admitted, outcomes):
             key = o.key
             rows.append(LogRow(seq, _x_bytes(o.x), o.y, t, key, status, now, block))
             result = step_view(step, seq, t)
@@ -552,7 +586,7 @@ class Registry:
             if key is not None:
                 result["key"] = key
             results[index] = result
-        return results, rows, seq, batch_keys  # type: ignore[return-value]
+        return rows
 
     # ------------------------------------------------------------ group commit (writer thread)
     def _run_group(self, tickets: list[Ticket]) -> None:
@@ -639,39 +673,40 @@ class Registry:
                     if live is None or live.id != job.model_id or live.config != job.config:
                         ticket.fail(_Stale())
                         continue
-                    tip = _Tip(live, live.state, live.monitor, live.version, live.version, live.seq, live.checkpoint_seq)
+                    tip = _Tip(live, live.state, live.monitor, live.version, live.version, live.seq, live.checkpoint_seq,
+                               live.state.last_time)
                 tips[job.model_id] = tip
             model_known = known.setdefault(job.model_id, {})
-            # Until a request of this group changes the model, the tip holds the live state; from
-            # then on its own working copy, which nothing else references (the answers read the
-            # tip's final state, after this loop). A single observation then chains on it in
-            # place: its only expected error, a time going backwards, is raised before any change.
-            # A batch may fail half-way, so it works on a copy of its own.
-            in_place = len(job.observations) == 1 and tip.owned
-            if in_place:
-                state, monitor = tip.state, tip.monitor
-            else:
-                state, monitor = tip.state.copy(), tip.monitor.copy()
+            # Each request is admitted against the ones before it in the group (keys, times);
+            # its observations are applied below, with the rest of its model's.
             try:
-                results, rows, seq, keys = self._steps(job.config, state, monitor, job.observations, model_known,
-                                                       tip.seq, now)
-            except Exception as exc:  # noqa: BLE001 - this request's error (e.g. a time going backwards)
+                results, seq, keys, last_t = self._admit(job.config, tip.last_time, job.observations, model_known,
+                                                         tip.seq, now, tip.admitted)
+            except Exception as exc:  # noqa: BLE001 - this request's error (a time going backwards); nothing admitted
                 ticket.fail(exc)
-                if in_place and not isinstance(exc, InvalidInput):
-                    # The working copy may be half-changed: this model's part of the group is dropped
-                    # (nothing of it is written) and its requests take the locked path again.
-                    for other in tip.jobs:
-                        other.fail(_Stale())
-                    del tips[job.model_id]
-                    known[job.model_id] = {k: v for (mid, k), v in found.items() if mid == job.model_id}
                 continue
             model_known.update(keys)
-            job.results, job.applied = results, len(rows)
-            if rows:
-                tip.state, tip.monitor, tip.seq, tip.owned = state, monitor, seq, True
+            applied = seq - tip.seq
+            job.results, job.applied = results, applied
+            if applied:
+                tip.seq, tip.last_time = seq, last_t
                 tip.version += 1
-                tip.rows.extend(rows)
             tip.jobs.append(ticket)
+        for mid, tip in list(tips.items()):
+            if not tip.admitted:
+                continue
+            # One working copy per model and group; all its requests' observations in one go
+            # (engine blocks across requests: the log records them, replay repeats them).
+            state, monitor = tip.state.copy(), tip.monitor.copy()
+            try:
+                tip.rows = self._absorb(state, monitor, tip.admitted, now)
+            except Exception:  # noqa: BLE001 - unexpected (inputs are checked): each request retries alone
+                log.warning("model %s: a group's update failed; its requests retry one by one", mid, exc_info=True)
+                for other in tip.jobs:
+                    other.fail(_Stale())
+                del tips[mid]
+                continue
+            tip.state, tip.monitor = state, monitor
         writes: list[PendingWrite] = []
         for mid, tip in tips.items():
             # Every answer describes the model as this transaction commits it: the

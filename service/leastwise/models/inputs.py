@@ -251,8 +251,15 @@ def _fast_observations_unchecked(items: list[Any], config: ModelConfig) -> list[
             return None
         flat = list(map(float, flat))  # what the detailed path's float(value) gives
     rows = np.array(flat, dtype=_FLOAT64).reshape(len(items), n + intercept)
-    # One norm bound checks every value too (|v| <= norm; NaN and inf fail).
-    if not np.einsum("ij,ij->i", rows, rows).max() <= _FAST_MAX_SQ:
+    # One norm bound checks every value too (|v| <= norm; NaN and inf fail). A single
+    # reading sums its squares in Python: the same bound, without numpy's per-call cost.
+    if len(items) == 1:
+        square_sum = 0.0
+        for v in flat:
+            square_sum += v * v
+        if not square_sum <= _FAST_MAX_SQ:
+            return None
+    elif not np.einsum("ij,ij->i", rows, rows).max() <= _FAST_MAX_SQ:
         return None
     rows.flags.writeable = False  # the rows are shared views: nobody may change one
     return list(map(Observation, rows, ys, ts, keys))

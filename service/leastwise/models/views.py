@@ -52,15 +52,25 @@ def state_view(config: ModelConfig, view: State) -> dict[str, Any]:
     }
 
 
+def _finite_step_value(v: float | None) -> float | None:
+    """:func:`finite` for a step's fields, which are floats or None (the hot path of every answer)."""
+    if v is None:
+        return None
+    if type(v) is not float:
+        v = float(v)
+    return v if -math.inf < v < math.inf else None
+
+
 def step_view(step: Step, seq: int, t: float | None) -> dict[str, Any]:
+    f = _finite_step_value
     return {
         "status": "applied",
         "seq": seq,
-        "prediction": finite(step.prediction),
-        "residual": finite(step.residual),
-        "recursive_residual": finite(step.recursive_residual),
-        "standardized_residual": finite(step.standardized_residual),
-        "leverage": finite(step.leverage),
+        "prediction": f(step.prediction),
+        "residual": f(step.residual),
+        "recursive_residual": f(step.recursive_residual),
+        "standardized_residual": f(step.standardized_residual),
+        "leverage": f(step.leverage),
         "time": t,
     }
 

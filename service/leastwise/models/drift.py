@@ -334,11 +334,14 @@ class ResidualMonitor:
         :meth:`advance` per observation when one is configured.
         """
         m = len(seqs)
+        # Arrays: the engine's checks then look at one dtype instead of every element.
+        y = np.array(ys, dtype=np.float64)
+        t = None if times is None else np.array(times, dtype=np.float64)
         ends = [m]
         if self.forgets:
             ends = []
             roll, primed = self.roll_decay, self.lag_factor is not None
-            for j, f in enumerate(state.decays(times, m)):
+            for j, f in enumerate(state.decays(t, m)):
                 roll *= f
                 if roll <= 0.5 or not primed:
                     ends.append(j + 1)
@@ -348,7 +351,7 @@ class ResidualMonitor:
         out: list[tuple[Step, str, dict[str, Any] | None, int]] = []
         start = 0
         for end in ends:
-            steps = state.update_block(x[start:end], ys[start:end], None if times is None else times[start:end])
+            steps = state.update_block(x[start:end], y[start:end], None if t is None else t[start:end])
             block = seqs[start]
             for step, seq in zip(steps, seqs[start:end]):
                 out.append((step, "applied", self.observe(step, seq, state), block))
@@ -744,8 +747,9 @@ def replayed_steps(state: State, rows: Iterable[Any], x_row: Any) -> Iterator[tu
 
 
 def _replay_block(state: State, block: list[Any], x_row: Any) -> Iterator[tuple[Any, Step]]:
-    times = None if block[0].t is None else [r.t for r in block]
-    steps = state.update_block(np.array([x_row(r.x) for r in block]), [r.y for r in block], times)
+    times = None if block[0].t is None else np.array([r.t for r in block], dtype=np.float64)
+    steps = state.update_block(np.array([x_row(r.x) for r in block]), np.array([r.y for r in block], dtype=np.float64),
+                               times)
     return zip(block, steps)
 
 

@@ -316,8 +316,9 @@ class State:
         run is cut where the sum of its leverages would exceed
         ``BLOCK_LEVERAGE_SUM`` (so ``cond(S) <= 1 + BLOCK_LEVERAGE_SUM``), before
         a renormalisation or a zero decay, and at ``BLOCK_ROWS`` rows; rows
-        outside such runs (the warm-up, a ridge prior, whose sigma needs every
-        step's coefficients, a state of storage format 1) take :meth:`update`.
+        outside such runs (the warm-up, a state of storage format 1) take
+        :meth:`update`. With a ridge prior sigma needs every step's
+        coefficients, which follow from the same factors (:meth:`_block_penalties`).
 
         Deterministic: the same state and rows give the same bits, so a log
         that records which rows were absorbed together replays bit for bit.
@@ -344,7 +345,7 @@ class State:
     def _absorb_run(self, x: np.ndarray, y: np.ndarray, t: np.ndarray | None, decays: list[float], start: int,
                     steps: list[Step]) -> int:
         """Absorb a run of rows from ``start`` as one block (see :meth:`update_block`); the rows taken, 0 if none."""
-        if self.spec.ridge != 0.0 or self._base is None or self.n == 0:
+        if self._base is None or self.n == 0:
             return 0
         d = self.dim
         n0 = self.n
@@ -400,6 +401,7 @@ class State:
         prior_weight, weight_sum, weight_sq_sum = self.prior_weight, self.weight_sum, self.weight_sq_sum
         rec_l, res_l, lev_l, pred_l = recursive.tolist(), residual.tolist(), lev.tolist(), predicted.tolist()
         rss_l = (rho2 * (c * c)).tolist()
+        penalty_l = self._block_penalties(factor, u, chol, rec) if self.spec.ridge > 0.0 else None
         sigma = sigma_first
         for j in range(m):
             f = decays[start + j]
@@ -410,6 +412,8 @@ class State:
             weight_sq_sum = f * f * weight_sq_sum + 1.0
             dof = weight_sum - d
             rss = rss_l[j]
+            if penalty_l is not None and prior_weight > 0.0:
+                rss -= prior_weight * penalty_l[j]  # the ridge penalty is not part of the data's RSS
             sigma = math.sqrt(rss / dof) if dof > 0.0 and rss > 0.0 and math.isfinite(rss) else None
         # Absorb: the rows enter the buffer as single updates would put them; full buffers fold.
         self._read = None
@@ -437,6 +441,22 @@ class State:
         self._solution = None
         self._sigma = -1.0
         return m
+
+    def _block_penalties(self, factor: np.ndarray, u: np.ndarray, chol: np.ndarray, rec: np.ndarray) -> list[float]:
+        """``delta ||w_i||^2`` after each row of a block (the ridge term :meth:`_sigma_now` removes from rho^2).
+
+        The coefficients after row ``i`` are ``w_i = w_0 + R^{-1} sum_{j<=i} g_j w~_j`` with
+        ``G = U L^{-T}``: the gain ``(A_{i-1})^{-1} x~_i / sqrt(1 + lev_i)`` of row ``i`` is
+        ``R^{-1} g_i`` (Woodbury's identity on the block's prefix), so one triangular solve
+        each for ``G`` and for the cumulative corrections gives every ``w_i``.
+        """
+        d = self.dim
+        R = factor[:d, :d]
+        w0 = dtrsv(R, factor[:d, d])
+        gains = dtrsm(1.0, chol, u, side=1, lower=1, trans_a=1)  # G = U L^{-T}
+        corrections = dtrsm(1.0, R, np.cumsum(gains * rec, axis=1))  # R^{-1} sum_{j<=i} g_j w~_j
+        w = corrections + w0[:, None]
+        return (self.spec.ridge * np.einsum("ij,ij->j", w, w)).tolist()
 
     def absorb_block(self, rows: ArrayLike, ys: ArrayLike, times: ArrayLike | None = None) -> None:
         """Absorb many observations at once (backfills): the same state as ``update_many``.

@@ -4,7 +4,9 @@ Not a test: run ``python tests/bench/engine.py``. Figures are ratios measured in
 one run (interleaved repeats, best of each) because the machines are shared.
 Prints one JSON line per dimension (d = 8 with the targets), one for the drift
 monitor, one for the update while another thread holds the interpreter
-(``gil``), and one per dimension for the read-time solve (``solution_us``).
+(``gil``), one per dimension for the blocked update with per-row steps
+(``update_block``, against single updates of the same rows), and one per
+dimension for the read-time solve (``solution_us``).
 """
 
 from __future__ import annotations
@@ -127,6 +129,36 @@ def measure_drift(d: int = 8, repeat: int = 7) -> dict:
             "drift_ratio": round(drift / upd, 3), "targets": {"drift_ratio": "<= 0.3"}}
 
 
+def measure_update_block(d: int, rows: int = 64, repeat: int = 7) -> dict:
+    """Per-row cost of ``State.update_block`` on runs of ``rows`` (a batch POST) over single updates, same rows."""
+    rng = np.random.default_rng(200 + d)
+    pool = 4096
+    X = rng.normal(size=(pool, d))
+    Y = X @ rng.normal(size=d) + rng.normal(size=pool)
+    state = State(Spec(dim=d, forgetting=0.999))
+    state.update_many(X[:1000], Y[:1000])  # past the warm-up: runs take the block path
+    runs = [(X[i:i + rows], Y[i:i + rows]) for i in range(1000, pool - rows, rows)]
+
+    def run_block(count: int) -> None:
+        for k in range(count):
+            state.update_block(*runs[k % len(runs)])
+
+    def run_single(count: int) -> None:
+        upd = state.update
+        for k in range(count):
+            xb, yb = runs[k % len(runs)]
+            for i in range(rows):
+                upd(xb[i], yb[i])
+
+    number = 40 if d <= 32 else 10
+    block, single = float("inf"), float("inf")
+    for _ in range(repeat):  # interleaved, same machine load
+        block = min(block, best_time(run_block, number, 1))
+        single = min(single, best_time(run_single, number, 1))
+    return {"d": d, "bench": "update_block", "rows": rows, "block_us_per_row": round(block / rows * 1e6, 3),
+            "single_us_per_row": round(single / rows * 1e6, 3), "block_vs_single": round(block / single, 3)}
+
+
 def measure_solution(d: int, repeat: int = 9) -> dict:
     """Cost of one read-time solve ``State.solution()`` (coefficients, rcond, refinement, sigma).
 
@@ -227,6 +259,8 @@ def main() -> None:
     print(json.dumps(result))
     print(json.dumps(measure_drift(8) | info))
     print(json.dumps(measure_contention(8) | info))
+    for d in (8, 64):
+        print(json.dumps(measure_update_block(d) | info))
     for d in (8, 32, 64, 128):
         print(json.dumps(measure_solution(d, 5 if quick else 9) | info))
 

@@ -23,8 +23,8 @@ The GET body is built once per version and kept on the live model (see
 :meth:`LiveModel.get_body`).
 
 Replays are bit-exact: the live path and replay apply the same rows with the
-same ``State.update`` calls to states that never had their solution cached
-(reads work on a separate copy).
+same engine calls (``State.update``, or ``State.update_block`` for the rows the
+log marks as one block) to states whose reads leave no trace in them.
 """
 
 from __future__ import annotations
@@ -592,9 +592,10 @@ class Registry:
     def _run_group(self, tickets: list[Ticket]) -> None:
         """Prepare every queued request on copies, commit them in one transaction, then swap the copies in.
 
-        Requests for one model chain inside the group (each starts from the
-        previous one's prepared state) and become one write that advances the
-        version once per request. Each answer carries its own observations'
+        Requests for one model are admitted in order (keys, times), then
+        their observations are applied together on one copy (engine blocks
+        across requests, see :meth:`_absorb`) and become one write that
+        advances the version once per request. Each answer carries its own observations'
         results and the model as committed by the group (version, n,
         coefficients after the group's last request for that model). Nothing
         in memory changes before the commit; a model whose write was rejected

@@ -23,10 +23,8 @@ leverage). Checked here:
   half-lives inside a batch, refused input, the exact-sum bookkeeping at a
   fold of the row buffer inside a block;
 * NIST StRD certified coefficients streamed in blocks of 16, and the identity
-  RSS_n = sum of squared recursive residuals (Brown, Durbin & Evans 1975).
-  The brief named Norris for that identity; Norris is not in
-  ``tests/data/nist_strd_linear.json``, so NoInt1 (cond 1) and Pontius (the
-  one with most rows absorbed in blocks) serve.
+  RSS_n = sum of squared recursive residuals (Brown, Durbin & Evans 1975) on
+  NoInt1 (cond 1) and Pontius (the dataset with most rows absorbed in blocks).
 """
 
 from __future__ import annotations

@@ -388,9 +388,10 @@ class State:
             return 0
         apriori = block[:, d] - u.T @ factor[:d, d]
         rec = dtrsv(chol, apriori, lower=1)  # the scaled recursive residuals
-        diag = np.diagonal(chol)
-        below = np.tril(chol, -1)
-        lev = np.maximum(lev0 - np.einsum("ij,ij->i", below, below), 0.0)
+        diag = chol.diagonal().copy()
+        chol.flat[:: m + 1] = 0.0  # what is left is strictly lower (dpotrf's clean=1 zeroed the upper part)
+        lev = np.maximum(lev0 - np.einsum("ij,ij->i", chol, chol), 0.0)
+        chol.flat[:: m + 1] = diag
         recursive = rec * c
         observed = y[start:start + m]
         predicted = observed - recursive * diag  # the a priori residual is L_ii times the recursive one

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 from sqlalchemy import bindparam, delete, func, insert, select, update
 from sqlalchemy.engine import Connection
@@ -30,9 +30,13 @@ class ModelRow:
     created: float
 
 
-@dataclass(frozen=True, slots=True)
-class LogRow:
-    """One applied observation of the log."""
+class LogRow(NamedTuple):
+    """One logged observation (immutable).
+
+    A named tuple, not a frozen dataclass like the other rows: one is built per
+    observation on the write path, and a frozen dataclass's ``__init__`` costs
+    ~0.9 us against ~0.3.
+    """
 
     seq: int
     x: bytes

@@ -118,10 +118,11 @@ def test_forgetting_batches_split_where_the_excitation_window_rolls(sqlite_url):
     assert ours["erosion"]["renewal"] == pytest.approx(ref["erosion"]["renewal"], rel=1e-9)
 
 
-def test_a_second_registry_catches_up_through_blocks(sqlite_url):
-    """Like a second process: it replays the other's batches from the log and reaches the same bytes."""
+def test_a_second_registry_catches_up_through_blocks(database_url):
+    """Like a second process: it replays the other's batches from the log and reaches the same bytes
+    (on SQLite and on PostgreSQL, where several processes share one database)."""
     X, y, t = _data(8, 600)
-    a, b = _registry(sqlite_url), _registry(sqlite_url)
+    a, b = _registry(database_url), _registry(database_url)
     a.create("m", CONFIGS["half-life"])
     _post(a, "m", X[:200], y[:200], t[:200], 50)
     assert b.live_state("m").to_bytes() == a.live_state("m").to_bytes()

@@ -329,13 +329,19 @@ class State:
         steps: list[Step] = []
         k = x.shape[0]
         i = 0
-        single_until = 0  # after a run too short for a block, a few single updates before the next try
+        # After a try that found no block, single updates until the next; the wait doubles while
+        # tries keep failing (a state whose leverages stay large, e.g. a very short memory).
+        single_until = 0
+        wait = MIN_BLOCK_ROWS
         while i < k:
             taken = 0
             if i >= single_until and k - i >= MIN_BLOCK_ROWS:
                 taken = self._absorb_run(x, y, t, decays, i, steps)
-                if not taken:
-                    single_until = i + MIN_BLOCK_ROWS
+                if taken:
+                    wait = MIN_BLOCK_ROWS
+                else:
+                    single_until = i + wait
+                    wait = min(2 * wait, BLOCK_ROWS)
             if not taken:
                 steps.append(self._absorb_one(x[i], float(y[i]), None if t is None else float(t[i]), decays[i]))
                 taken = 1

@@ -297,6 +297,22 @@ def test_ridge_prior_takes_the_block_path_and_matches_single_updates(ridge):
     np.testing.assert_allclose(state.coefficients(), twin.coefficients(), rtol=1e-12, atol=1e-15)
 
 
+def test_tries_back_off_while_no_block_forms():
+    # At forgetting 0.5 the state remembers ~2 rows at d = 8: every leverage is large, no run
+    # forms a block, and every row is a single update (bit for bit those of update_many). The
+    # wait between tries doubles (4, 8, 16, ... 64 rows), so 512 rows cost about a dozen tries,
+    # not one every 4 rows (update_block's documented back-off).
+    X, y, _t = _data(8, 600, 7)
+    state = State(Spec(dim=8, forgetting=0.5))
+    state.update_many(X[:88], y[:88])
+    twin = state.copy()
+    with _recording("_absorb_run") as tries, _singles() as seen:
+        got = state.update_block(X[88:], y[88:])
+    assert len(seen) == 512
+    assert got == twin.update_many(X[88:], y[88:]) and state.to_bytes() == twin.to_bytes()
+    assert len(tries) <= 12
+
+
 def test_fresh_state_warms_up_with_single_updates_then_blocks():
     state, X, y, t = _warm(Spec(dim=3), 0)
     twin = state.copy()

@@ -786,7 +786,10 @@ class State:
         new = State.__new__(State)
         for slot in State.__slots__:
             value = getattr(self, slot)
-            setattr(new, slot, value.copy() if type(value) is np.ndarray else value)
+            # order="K": the factor stays Fortran-ordered, as after from_bytes. A C-ordered copy
+            # gives the same bytes but not the same steps: BLAS sums a strided column of it
+            # (the prediction u . z) in another order than a contiguous one.
+            setattr(new, slot, value.copy(order="K") if type(value) is np.ndarray else value)
         new._solution = None
         new._read = None
         return new

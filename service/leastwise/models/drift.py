@@ -468,7 +468,9 @@ class ResidualMonitor:
     def _roll(self, state: State, seq: int) -> None:
         """Once per weight half-life under forgetting: evaluate erosion, keep the factor for the next window."""
         d = state.spec.dim
-        R = np.array(state.factor[:d, :d])
+        # C order, as from_bytes gives it back: products with it then sum in the same order
+        # live and after a restart (a Fortran-ordered copy gave other last bits).
+        R = np.ascontiguousarray(state.factor[:d, :d])
         lag, f = self.lag_factor, self.roll_decay
         self.lag_factor, self.roll_decay = R, 1.0
         if lag is None or not np.isfinite(R).all():
@@ -532,8 +534,9 @@ class ResidualMonitor:
         if estimate is not None:
             sol = estimate.solution()
             if sol.identifiable and sol.sigma is not None:
-                self.ref_arrays = {"coefficients": np.array(sol.coefficients, dtype=np.float64),
-                                   "inverse_moment": np.array(estimate.inverse_moment(), dtype=np.float64)}
+                # C order, as from_bytes gives them back (the same sums live and after a restart)
+                self.ref_arrays = {"coefficients": np.array(sol.coefficients, dtype=np.float64, order="C"),
+                                   "inverse_moment": np.array(estimate.inverse_moment(), dtype=np.float64, order="C")}
                 ref.update(estimate=True, sigma=float(sol.sigma), dof=float(sol.dof), rss=float(sol.rss),
                            effective_n=float(estimate.weight_sum))
         self.reference = ref

@@ -185,6 +185,12 @@ def _information(R: np.ndarray, v: np.ndarray) -> float:
     return float(rv @ rv)
 
 
+def _roll_due(decay_since_roll: float, primed: bool) -> bool:
+    """Whether the excitation window rolls now (:meth:`ResidualMonitor._roll`): at the first
+    observation, and once the weight of the window's first observation has halved."""
+    return decay_since_roll <= 0.5 or not primed
+
+
 # ---------------------------------------------------------------------------- the monitor
 _REF_KINDS = ("start", "reset", "snapshot", "now")
 
@@ -277,7 +283,7 @@ class ResidualMonitor:
             self.gated_run_since = -1
         if self.forgets and state is not None:
             self.roll_decay *= step.decay
-            if self.roll_decay <= 0.5 or self.lag_factor is None:
+            if _roll_due(self.roll_decay, self.lag_factor is not None):
                 self._roll(state, seq)
         sig = self._signature(dsig)
         if sig == self._sig:
@@ -343,7 +349,7 @@ class ResidualMonitor:
             roll, primed = self.roll_decay, self.lag_factor is not None
             for j, f in enumerate(state.decays(t, m)):
                 roll *= f
-                if roll <= 0.5 or not primed:
+                if _roll_due(roll, primed):
                     ends.append(j + 1)
                     roll, primed = 1.0, True
             if not ends or ends[-1] != m:

@@ -230,7 +230,7 @@ class _Raw:
         per = max(1, 999 // width)
         for start in range(0, len(rows), per):
             chunk = rows[start:start + per]
-            sql = self._sql(_values_sql(head, width, len(chunk)))
+            sql = _values_sql(head, width, len(chunk), self.marker)
             params = [v for row in chunk for v in row]
             try:
                 self.cursor.execute(sql, params)
@@ -242,8 +242,8 @@ class _Raw:
 
 
 @functools.lru_cache(maxsize=256)
-def _values_sql(head: str, width: int, count: int) -> str:
-    row = "(" + ",".join("?" * width) + ")"
+def _values_sql(head: str, width: int, count: int, marker: str) -> str:
+    row = "(" + ",".join([marker] * width) + ")"
     return f"{head} VALUES " + ",".join([row] * count)
 
 
@@ -332,7 +332,7 @@ def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) 
                 continue
             mid = w.model_id
             for r in w.rows:
-                log_rows.append((mid, r.seq, r.x, r.y, r.t, r.key, r.status, r.received, r.block))
+                log_rows.append((mid, *r))  # LogRow's fields are the log's columns after model_id, in order
                 if r.key is not None:
                     key_rows.append((mid, r.key, r.seq))
             current[mid] = w.new_version

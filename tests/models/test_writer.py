@@ -68,3 +68,26 @@ def test_threads_never_wait_for_a_loop():
     finally:
         writer.close()
     assert groups == [[7]] and writer.gathered == 0
+
+
+def test_housekeeping_runs_after_each_group_is_answered_and_its_failure_stops_nothing():
+    seen: list[tuple[str, bool]] = []
+    tickets: list[Ticket] = []
+
+    def handler(group: list[Ticket]) -> None:
+        for t in group:
+            t.resolve(t.job)
+        tickets.extend(group)
+
+    def after_group() -> None:
+        seen.append(("after", all(t.event is not None and t.event.is_set() for t in tickets)))
+        raise RuntimeError("housekeeping failed")  # logged; the next group goes on
+
+    writer = GroupWriter(handler, gather_wait=0.0, after_group=after_group)
+    try:
+        assert writer.submit(1).wait() == 1
+        assert writer.submit(2).wait() == 2
+        assert writer.submit(3).wait() == 3
+    finally:
+        writer.close()
+    assert len(seen) == 3 and all(released for _, released in seen)  # only once the group was released

@@ -229,7 +229,7 @@ class Registry:
             with self._writer_guard:
                 if self._writer is None:
                     self._writer = GroupWriter(self._run_group, max_group=self.max_group,
-                                               gather_wait=self.group_gather)
+                                               gather_wait=self.group_gather, after_group=self.store.between_writes)
                 writer = self._writer
         return writer
 

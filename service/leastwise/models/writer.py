@@ -118,8 +118,10 @@ class GroupWriter:
     """The writer thread of one database. ``handler(tickets)`` must resolve every ticket it is given."""
 
     def __init__(self, handler: Callable[[list[Ticket]], None], *, max_group: int = 256,
-                 name: str = "leastwise-writer", gather_below: int = 12, gather_wait: float = 0.0005) -> None:
+                 name: str = "leastwise-writer", gather_below: int = 12, gather_wait: float = 0.0005,
+                 after_group: Callable[[], None] | None = None) -> None:
         self.handler = handler
+        self.after_group = after_group  # housekeeping once a group is answered (the store's between_writes)
         self.max_group = max(1, max_group)
         self.gather_below = gather_below
         self.gather_wait = gather_wait
@@ -180,6 +182,11 @@ class GroupWriter:
                 for ticket in batch:
                     ticket.fail(exc)
             self._release(batch)
+            if self.after_group is not None:
+                try:
+                    self.after_group()
+                except Exception:  # noqa: BLE001 - housekeeping only; the next group goes on regardless
+                    log.warning("housekeeping after a group failed", exc_info=True)
 
     def _gather(self, loop: asyncio.AbstractEventLoop) -> None:
         """Wait (at most ``gather_wait``) until ``loop`` has run the callbacks it already has (see the module docstring)."""

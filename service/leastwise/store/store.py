@@ -32,13 +32,13 @@ class Store:
 
     @classmethod
     def open(cls, url: str, *, pool_size: int = 8, run_migrations: bool = True,
-             background_checkpoints: bool = False) -> "Store":
+             background_checkpoints: bool = False, checkpoint_interval: float = 0.1) -> "Store":
         """Open (and migrate) the database; ``background_checkpoints``: SQLite WAL checkpoints off the
-        commit path (the service's setting, see :class:`WalCheckpointer`)."""
+        commit path, every ``checkpoint_interval`` seconds (the service's setting, see :class:`WalCheckpointer`)."""
         engine = open_engine(url, pool_size=pool_size, wal_autocheckpoint=not background_checkpoints)
         if run_migrations:
             migrate(engine)
-        return cls(engine, WalCheckpointer(engine) if background_checkpoints and is_sqlite(engine) else None)
+        return cls(engine, WalCheckpointer(engine, checkpoint_interval) if background_checkpoints and is_sqlite(engine) else None)
 
     @property
     def dialect(self) -> str:
@@ -107,6 +107,11 @@ class Store:
         with self.engine.connect().execution_options(**{WRITE: True}) as conn:
             with conn.begin():
                 yield conn
+
+    def between_writes(self) -> None:
+        """Housekeeping a writer runs with no transaction open (SQLite: :meth:`WalCheckpointer.between_writes`)."""
+        if self.checkpointer is not None:
+            self.checkpointer.between_writes()
 
     def close(self) -> None:
         with self._quick_lock:

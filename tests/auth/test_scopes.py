@@ -34,6 +34,7 @@ ENDPOINTS = [
     ("GET", "/v1/tokens", None, "admin", 200),
     ("DELETE", "/v1/tokens/{tid}", None, "admin", 204),
     ("GET", "/v1/audit", None, "admin", 200),
+    ("GET", "/v1/metrics", None, "read", 200),
 ]
 RANK = {"read": 0, "write": 1, "admin": 2}
 

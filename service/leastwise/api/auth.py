@@ -88,6 +88,7 @@ ROUTE_SCOPES: tuple[Rule, ...] = (  # the hottest first: classify() stops at the
     Rule("GET", "/v1/tokens", "admin", "tokens", unlimited=True),
     Rule("DELETE", "/v1/tokens/{token}", "admin", "token-revoke", unlimited=True),
     Rule("GET", "/v1/audit", "admin", "audit", unlimited=True),
+    Rule("GET", "/v1/metrics", "read", "metrics"),  # service-wide counts, nothing per model
 )
 
 

@@ -1,4 +1,4 @@
-"""One structured log line per request (pure ASGI, so it costs little)."""
+"""One structured log line per request and its count for the metrics (pure ASGI, so it costs little)."""
 
 from __future__ import annotations
 
@@ -8,14 +8,20 @@ from typing import Any
 
 from leastwise.logging import request_logger
 
+from .metrics import HttpTally
+
 __all__ = ["RequestLog"]
 
 
 class RequestLog:
-    """Logs method, path, status, duration (ms), the model name and the client address; never bodies or headers."""
+    """Logs method, path, status, duration (ms), the model name and the client address; never bodies or headers.
 
-    def __init__(self, app: Any) -> None:
+    With a ``tally`` every response is also counted there (``api/metrics.py``).
+    """
+
+    def __init__(self, app: Any, tally: HttpTally | None = None) -> None:
         self.app = app
+        self.tally = tally
 
     async def __call__(self, scope: dict, receive: Any, send: Any) -> None:
         if scope["type"] != "http":
@@ -33,6 +39,9 @@ class RequestLog:
         try:
             await self.app(scope, receive, _send)
         finally:
+            seconds = time.perf_counter() - start
+            if self.tally is not None:
+                self.tally.count(scope.get("method", ""), scope.get("path", ""), status, seconds)
             if request_logger.isEnabledFor(logging.INFO):
                 path = scope.get("path", "")
                 parts = path.split("/")
@@ -40,7 +49,7 @@ class RequestLog:
                     "method": scope.get("method"),
                     "path": path,
                     "status": status,
-                    "duration_ms": round((time.perf_counter() - start) * 1000.0, 3),
+                    "duration_ms": round(seconds * 1000.0, 3),
                     "client": (scope.get("client") or ("", 0))[0],
                 }
                 if len(parts) > 3 and parts[1] == "v1" and parts[2] == "models":

@@ -127,6 +127,8 @@ _EMPTY = {"description": "Done; no body"}
 SUCCESS: dict[tuple[str, str], dict[str, Any]] = {
     ("get", "/healthz"): {"200": _json({"type": "object", "required": ["status"],
                                         "properties": {"status": {"const": "ok"}}}, "Alive")},
+    ("get", "/v1/metrics"): {"200": {"description": "Prometheus text exposition (api/metrics.py)",
+                                     "content": {"text/plain": {"schema": {"type": "string"}}}}},
     ("get", "/v1/models"): {"200": _json({"type": "object", "required": ["models"],
                                           "properties": {"models": {"type": "array", "items": _DESCRIPTION}}})},
     ("put", "/v1/models/{name}"): {"200": _json(_DESCRIPTION, "Exists with the same configuration"),

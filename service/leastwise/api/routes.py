@@ -61,6 +61,15 @@ async def healthz() -> Response:
     return json_response({"status": "ok"})
 
 
+@router.get("/v1/metrics")
+async def metrics(request: Request) -> Response:
+    """Prometheus text exposition of the service's counts (api/metrics.py); built from memory only."""
+    from .metrics import CONTENT_TYPE_LATEST  # noqa: PLC0415 - keeps the module graph one-way (metrics imports models)
+
+    body = await run_in_threadpool(request.app.state.metrics.render)
+    return Response(body, media_type=CONTENT_TYPE_LATEST, headers={"Cache-Control": "no-store"})
+
+
 @router.get("/v1/models")
 async def list_models(request: Request) -> Response:
     models = await run_in_threadpool(_registry(request).list)

@@ -458,6 +458,11 @@ class ResidualMonitor:
         out.sort(key=lambda r: 0 if r["level"] == ALARM else 1)
         return out
 
+    @property
+    def level(self) -> str:
+        """The current drift status, ``ok``, ``watch`` or ``alarm`` (kept up to date by every update; costs nothing)."""
+        return self._level
+
     def status(self) -> dict[str, Any]:
         """``{"status": "ok" | "watch" | "alarm", "reasons": [...], "gated": n, "reference": {...}}``."""
         reasons = self.reasons()

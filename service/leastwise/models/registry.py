@@ -52,6 +52,7 @@ from . import drift as drift_hooks
 from .drift import ResidualMonitor
 from .errors import Busy, Conflict, InvalidInput, NotFound
 from .inputs import Observation, parse_observations, parse_predict
+from .tally import ObservationTally, RegistryStats
 from .views import by_name, covariance_view, prediction_view, rfc3339, state_view, step_view
 from .writer import GroupWriter, Ticket, commit_group, debug_commit_delay
 
@@ -213,6 +214,8 @@ class Registry:
         self.clock = clock
         self._entries: dict[str, _Entry] = {}
         self._guard = threading.Lock()
+        #: committed observations by result status (for the metrics)
+        self.observations = ObservationTally()
 
     # ------------------------------------------------------------ plumbing
     def close(self) -> None:
@@ -222,6 +225,23 @@ class Registry:
         if writer is not None:
             writer.close()
         self.store.close()
+
+    def stats(self) -> RegistryStats:
+        """Counts for the metrics, from memory only: loaded models, their drift levels, the writer's groups."""
+        with self._guard:
+            entries = list(self._entries.values())
+        levels: dict[str, int] = {}
+        loaded = 0
+        for entry in entries:
+            live = entry.live  # read without the model's lock: a scrape may see the version before or after a write
+            if live is None:
+                continue
+            loaded += 1
+            level = live.monitor.level
+            levels[level] = levels.get(level, 0) + 1
+        writer = self._writer
+        return RegistryStats(loaded, levels, self.observations.snapshot(),
+                             writer.stats() if writer is not None else None, self.store.engine.dialect.name)
 
     def _group_writer(self) -> GroupWriter:
         writer = self._writer
@@ -630,6 +650,8 @@ class Registry:
                         if w.checkpoint is not None:
                             live.checkpoint_seq, live.checkpoint_version = w.new_seq, w.new_version
             for ticket in tip.jobs:
+                if ticket.job.results is not None:
+                    self.observations.add(ticket.job.results)
                 ticket.resolve(None)
 
     def _answer_early(self, tickets: list[Ticket]) -> None:
@@ -764,6 +786,7 @@ class Registry:
             if pending.checkpoint is not None:
                 live.checkpoint_seq, live.checkpoint_version = pending.new_seq, pending.new_version
         applied = len(pending.rows) if pending is not None else 0
+        self.observations.add(prepared.results)
         return self._answer(prepared.results, applied, self._committed(live.config, live.read_view(), live.version))
 
     def _commit(self, writes: list[PendingWrite], now: float) -> None:

@@ -39,6 +39,7 @@ USER_AGENT = "leastwise-client/0.1"
 # retry policies of one request
 _SAFE = "safe"  # idempotent: retry after any transport failure
 _SENT_ONLY = "connect"  # retry only when the request cannot have reached the service
+_MINIMAL = {"Prefer": "return=minimal"}  # RFC 7240: the answer without the model
 
 _CONNECT_FAILURES = (httpx.ConnectError, httpx.ConnectTimeout, httpx.PoolTimeout)
 _TRANSPORT_FAILURES = (httpx.TransportError,)
@@ -251,36 +252,48 @@ class Client:
     def _policy(self, keys: list[str | None]) -> str:
         return _SAFE if all(k is not None for k in keys) else _SENT_ONLY
 
-    def observe(self, name: str, x: Inputs, y: float, *, time: TimeLike = None, key: str | None = None) -> ObservationAnswer:
-        """Send one reading; ``x`` in feature order or by feature name. ``answer.result`` has its residuals."""
+    def _post_observations(self, name: str, body: Any, keys: list[str | None], minimal: bool) -> ObservationAnswer:
+        headers = _MINIMAL if minimal else None
+        return ObservationAnswer.from_json(self._request("POST", self._path(name, "observations"), body,
+                                                         policy=self._policy(keys), headers=headers).json())
+
+    def observe(self, name: str, x: Inputs, y: float, *, time: TimeLike = None, key: str | None = None,
+                minimal: bool = False) -> ObservationAnswer:
+        """Send one reading; ``x`` in feature order or by feature name. ``answer.result`` has its residuals.
+
+        ``minimal``: ask for the answer without the model (``Prefer: return=minimal``):
+        ``coefficients`` is then empty and ``identifiable`` and ``sigma`` are ``None``;
+        the service spends less on each answer.
+        """
         r = Reading(x, y, time, key)
         keys = self._keys([r], None)
-        body = _observation_json(r, keys[0])
-        return ObservationAnswer.from_json(self._request("POST", self._path(name, "observations"), body,
-                                                         policy=self._policy(keys)).json())
+        return self._post_observations(name, _observation_json(r, keys[0]), keys, minimal)
 
-    def observe_batch(self, name: str, readings: Iterable[ReadingLike], *, key_prefix: str | None = None) -> ObservationAnswer:
+    def observe_batch(self, name: str, readings: Iterable[ReadingLike], *, key_prefix: str | None = None,
+                      minimal: bool = False) -> ObservationAnswer:
         """Send readings as one batch (applied in order, all or nothing).
 
         Readings without a key get ``<key_prefix>:<index>`` (a random prefix
         per call unless given: pass one to make keys repeatable across runs).
+        ``minimal`` as in :meth:`observe`.
         """
         items = [_reading(r) for r in readings]
         if not items:
             raise ValueError("a batch needs at least one reading")
         keys = self._keys(items, key_prefix)
         body = {"observations": [_observation_json(r, k) for r, k in zip(items, keys)]}
-        return ObservationAnswer.from_json(self._request("POST", self._path(name, "observations"), body,
-                                                         policy=self._policy(keys)).json())
+        return self._post_observations(name, body, keys, minimal)
 
     def stream(self, name: str, readings: Iterable[ReadingLike], *, batch_size: int = 500,
-               max_delay: float | None = None, key_prefix: str | None = None) -> Iterator[ObservationAnswer]:
+               max_delay: float | None = None, key_prefix: str | None = None,
+               minimal: bool = False) -> Iterator[ObservationAnswer]:
         """Send readings from any iterable in batches; yields each batch's answer.
 
         A batch is sent when it holds ``batch_size`` readings, when a new
         reading arrives ``max_delay`` seconds or more after the batch's first
         one, and at the end. Keys are ``<key_prefix>:<n>`` with ``n`` counting
         readings from 0 over the whole stream (random prefix unless given).
+        ``minimal`` as in :meth:`observe`.
         """
         if batch_size < 1:
             raise ValueError("batch_size must be >= 1")
@@ -296,8 +309,7 @@ class Client:
                     for i, r in enumerate(buffer)]
             body = {"observations": [_observation_json(r, k) for r, k in zip(buffer, keys)]}
             buffer = []
-            return ObservationAnswer.from_json(self._request("POST", self._path(name, "observations"), body,
-                                                             policy=self._policy(keys)).json())
+            return self._post_observations(name, body, keys, minimal)
 
         for item in readings:
             now = _time.monotonic()

@@ -167,14 +167,18 @@ class ObservationResult:
 
 @dataclass(frozen=True, slots=True)
 class ObservationAnswer:
-    """The answer to a POST of observations: per-observation results and the model after them."""
+    """The answer to a POST of observations: per-observation results and the model after them.
+
+    For a minimal answer (``minimal=True``) ``coefficients`` is empty and
+    ``identifiable`` and ``sigma`` are ``None``: the service left the model out.
+    """
 
     results: tuple[ObservationResult, ...]
     applied: int
     duplicates: int
     version: int
     n: int
-    identifiable: bool
+    identifiable: bool | None
     coefficients: dict[str, float | None]
     sigma: float | None
     raw: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
@@ -183,7 +187,8 @@ class ObservationAnswer:
     def from_json(cls, d: Mapping[str, Any]) -> "ObservationAnswer":
         return cls(tuple(ObservationResult.from_json(r) for r in d.get("results") or ()), int(d.get("applied", 0)),
                    int(d.get("duplicates", 0)), int(d.get("version", 0)), int(d.get("n", 0)),
-                   bool(d.get("identifiable", False)), dict(d.get("coefficients") or {}), d.get("sigma"), dict(d))
+                   None if "identifiable" not in d else bool(d["identifiable"]), dict(d.get("coefficients") or {}),
+                   d.get("sigma"), dict(d))
 
     @property
     def result(self) -> ObservationResult:

@@ -12,9 +12,9 @@ cluster (tests/support/postgres.py).
 
 Runs (targets from issue 7):
 
-- ``single``  d = 8, one observation per POST, 16 and 64 connections
+- ``single``  d = 8, one observation per POST, 16 and 64 connections (and 16 with ``Prefer: return=minimal``)
 - ``batch64`` d = 8, 64 observations per POST, 16 connections (observations/s)
-- ``uniform`` d = 8, single POSTs spread uniformly over 10,000 models
+- ``uniform`` d = 8, single POSTs spread uniformly over 10,000 models (full and minimal answers)
 - ``get``     dashboard poll ``GET /v1/models/{name}``, plain and with ``If-None-Match``
 - ``d64``     d = 64, single POST, 16 connections
 """
@@ -54,6 +54,7 @@ function init(args)
   method = args[6] or "POST"
   etag = args[7] or ""
   start = tonumber(args[8]) or 0       -- warm-up: the model to begin with
+  prefer = args[9] or ""               -- "return=minimal": the answer without the model (RFC 7240)
   math.randomseed(os.time() + tid * 7919)
 end
 local function one(i)
@@ -83,7 +84,9 @@ function request()
     for i = 1, batch do parts[i] = one(i) end
     body = '{"observations":[' .. table.concat(parts, ",") .. ']}'
   end
-  return wrk.format("POST", path, {["Content-Type"] = "application/json"}, body)
+  local headers = {["Content-Type"] = "application/json"}
+  if prefer ~= "" then headers["Prefer"] = prefer end
+  return wrk.format("POST", path, headers, body)
 end
 function done(summary, latency, requests)
   io.write(string.format("RESULT %d %d %d %d %d %d\n", summary.requests, summary.duration,
@@ -206,19 +209,20 @@ class Bench:
 
     def run(self, server: LeastwiseServer, bare: LeastwiseServer, database: str, bench: str, conns: int, *,
             batch: int = 1, d: int = 8, name: str | None = None, models: int = 0, method: str = "POST",
-            etag: str = "", check_n: bool = True) -> dict:
+            etag: str = "", check_n: bool = True, prefer: str = "") -> dict:
         import httpx
 
-        tag = f"{bench}-{database}-c{conns}-b{batch}-d{d}"
+        tag = f"{bench}-{database}-c{conns}-b{batch}-d{d}" + ("-minimal" if prefer else "")
         path = f"/v1/models/{name or tag}" + ("/observations" if method == "POST" else "")
         if name is None:
             with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
                 http.put(f"/v1/models/{tag}", json=features(d)).raise_for_status()
                 http.post(f"/v1/models/{tag}/observations", json={"observations": warm_rows(d)}).raise_for_status()
         svc = wrk(f"{server.url}{path}", self.script, conns, self.args.duration, batch, tag, d, models, "u",
-                  method, etag)
+                  method, etag, 0, prefer)
         ceil = self.ceiling(bare, "get" if method == "GET" else "post", conns, batch, d)
-        line = {"bench": bench, "database": database, "connections": conns, "batch": batch, "d": d, **svc,
+        line = {"bench": bench + ("_minimal" if prefer else ""), "database": database, "connections": conns,
+                "batch": batch, "d": d, **svc,
                 "observations_per_s": round(svc["rps"] * batch, 1) if method == "POST" else None,
                 "ceiling_rps": ceil["rps"], "ceiling_p99_ms": ceil["p99_ms"],
                 "ratio": round(svc["rps"] / ceil["rps"], 3), "cpu_count": os.cpu_count()}
@@ -260,6 +264,8 @@ def main() -> None:
         if "single" in only:
             for conns in (16, 64):
                 bench.run(server, bare, "sqlite", "single", conns)
+            # the same with "Prefer: return=minimal": no model (so no solution) in the answers
+            bench.run(server, bare, "sqlite", "single", 16, prefer="return=minimal")
         if "batch64" in only:
             bench.run(server, bare, "sqlite", "batch64", 16, batch=64)
         if "uniform" in only:
@@ -272,6 +278,9 @@ def main() -> None:
                 start += max(1, int(done["requests"] * 0.8))  # the two threads need not keep pace exactly
             for conns in (16, 64):
                 bench.run(server, bare, "sqlite", "uniform", conns, name="u0", models=args.models)
+            for conns in (16, 64):
+                bench.run(server, bare, "sqlite", "uniform", conns, name="u0", models=args.models,
+                          prefer="return=minimal")
         if "get" in only:
             import httpx
 

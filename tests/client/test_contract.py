@@ -59,6 +59,20 @@ def test_observe_single_batch_and_stream_are_exact(lw: Client, name: str):
     assert state.last_time.startswith("2025-03-04T06:00")
 
 
+def test_minimal_answers_leave_the_model_out(lw: Client, name: str):
+    lw.create_model(name, FEATURES)
+    X, y = _rows(40)
+    one = lw.observe(name, X[0].tolist(), y[0], minimal=True)
+    assert one.applied == 1 and one.coefficients == {} and one.identifiable is None and one.sigma is None
+    assert one.raw.keys() == {"results", "applied", "duplicates", "version", "n"}
+    batch = lw.observe_batch(name, [(X[i], y[i]) for i in range(1, 10)], minimal=True)
+    assert batch.applied == 9 and batch.n == 10 and batch.coefficients == {}
+    streamed = list(lw.stream(name, [(X[i], y[i]) for i in range(10, 40)], batch_size=15, minimal=True))
+    assert [a.applied for a in streamed] == [15, 15] and streamed[-1].n == 40
+    full = lw.observe(name, X[0].tolist(), y[0])  # no key given: a new reading, answered in full
+    assert full.identifiable is True and set(full.coefficients) == {"intercept", *FEATURES}
+
+
 def test_stream_with_key_prefix_is_repeatable(lw: Client, name: str):
     lw.create_model(name, FEATURES)
     X, y = _rows(50)

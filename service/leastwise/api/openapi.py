@@ -187,6 +187,15 @@ _PROBLEMS = {
 }
 
 
+#: header parameters per operation
+HEADERS: dict[tuple[str, str], list[dict[str, Any]]] = {
+    ("post", "/v1/models/{name}/observations"): [{
+        "name": "Prefer", "in": "header", "required": False, "schema": {"type": "string"},
+        "description": "RFC 7240; `return=minimal` leaves the coefficients, sigma and identifiable out of the "
+                       "answer (answered with `Preference-Applied: return=minimal`)"}],
+}
+
+
 def _problem_responses() -> dict[str, Any]:
     return {code: {"description": text, "content": {"application/problem+json": {"schema": PROBLEM}}}
             for code, text in _PROBLEMS.items()}
@@ -206,6 +215,8 @@ def describe(schema: dict[str, Any]) -> dict[str, Any]:
             key = (method, path)
             if key in REQUEST_BODIES:
                 op["requestBody"] = REQUEST_BODIES[key]
+            if key in HEADERS:
+                op["parameters"] = [*op.get("parameters", []), *HEADERS[key]]
             if key in SUCCESS:
                 op["responses"] = dict(SUCCESS[key])
             else:

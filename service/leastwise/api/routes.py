@@ -15,7 +15,7 @@ from .auth import may_see
 from .body import MISSING, read_json
 from .problems import Problem
 
-__all__ = ["router", "json_response", "model_state", "observe"]
+__all__ = ["router", "json_response", "model_state", "observe", "prefers_minimal"]
 
 router = APIRouter()
 
@@ -139,9 +139,42 @@ async def post_observations(name: str, request: Request) -> Response:
 
 
 async def observe(name: str, request: Request) -> Response:
-    """``POST /v1/models/{name}/observations`` (also answered by the fast lane, api/fastlane.py)."""
+    """``POST /v1/models/{name}/observations`` (also answered by the fast lane, api/fastlane.py).
+
+    ``Prefer: return=minimal`` (RFC 7240): the answer leaves out the model's
+    coefficients, sigma and identifiability (a gateway that only posts needs
+    neither, and each costs a solution per model and group); per-observation
+    results, ``version`` and ``n`` stay.
+    """
     body = await read_json(request, _limit(request))
-    return json_response(await _registry(request).observe_async(name, body))
+    minimal = prefers_minimal(request.headers.getlist("prefer"))
+    answer = await _registry(request).observe_async(name, body, minimal=minimal)
+    if not minimal:
+        return json_response(answer)
+    if "coefficients" in answer:  # answered by a path that solved anyway (a retry, a model just loaded)
+        answer = {k: v for k, v in answer.items() if k not in MODEL_FIELDS}
+    return json_response(answer, headers=_MINIMAL_APPLIED)
+
+
+#: The committed model's fields that ``Prefer: return=minimal`` leaves out of an observation answer.
+MODEL_FIELDS = frozenset({"coefficients", "sigma", "identifiable"})
+_MINIMAL_APPLIED = {"Preference-Applied": "return=minimal"}
+
+
+def prefers_minimal(values: list[str]) -> bool:
+    """True when the ``Prefer`` header(s) ask for ``return=minimal`` (RFC 7240 sections 2 and 4.2).
+
+    Preferences are comma-separated, each ``token [= value] *(; parameter)``; the
+    token is case-insensitive and the value may be quoted. Preferences not understood
+    are ignored, as the RFC asks; with both ``return`` values, the first one counts.
+    """
+    for value in values:
+        for preference in value.split(","):
+            head = preference.split(";", 1)[0]
+            token, _, word = head.partition("=")
+            if token.strip().lower() == "return":
+                return word.strip().strip('"').lower() == "minimal"
+    return False
 
 
 @router.post("/v1/models/{name}/predict")

@@ -152,6 +152,7 @@ class _Job:
     applied: int = 0
     version: int = 0
     answer: dict[str, Any] | None = None  # built on the event loop while the commit is in flight
+    minimal: bool = False  # the answer leaves out the model's coefficients (Prefer: return=minimal)
 
 
 @dataclass(slots=True)
@@ -452,13 +453,15 @@ class Registry:
     #: Bodies with more observations than this are parsed in a worker thread, not on the event loop.
     INLINE_PARSE_LIMIT = 256
 
-    async def observe_async(self, name: str, body: Any) -> dict[str, Any]:
+    async def observe_async(self, name: str, body: Any, *, minimal: bool = False) -> dict[str, Any]:
         """:meth:`observe` for a coroutine: the request joins the next group commit without a worker thread.
 
         Validation runs on the event loop (microseconds); the request then
         awaits its group's commit. A model not yet in memory, a large batch,
         ungrouped commits and the retry after another process wrote take
-        :meth:`observe` in a worker thread.
+        :meth:`observe` in a worker thread. ``minimal``: on the grouped path the
+        answer carries ``version`` and ``n`` but not the coefficients, so no
+        solution is computed for it (the other paths answer in full).
         """
         entry = self._entry(name)
         live = entry.live  # read without the lock: the writer re-checks id and config under it
@@ -468,14 +471,14 @@ class Registry:
             return await anyio.to_thread.run_sync(self.observe, name, body)
         config = live.config
         observations, _batch = parse_observations(body, config, self.max_batch)
-        job = _Job(entry, live.id, config, observations)
+        job = _Job(entry, live.id, config, observations, minimal=minimal)
         try:
             await self._group_writer().submit_async(job)
         except _Stale:
             return await anyio.to_thread.run_sync(self._observe_retry, entry, name, body)
         if job.answer is not None:
             return job.answer
-        return self._answer(job.results, job.applied, self._committed(config, job.state, job.version))
+        return self._answer(job.results, job.applied, self._committed_for(job))
 
     def _observe_optimistic(self, live: LiveModel, observations: list[Observation]) -> dict[str, Any]:
         now = self.clock()
@@ -674,12 +677,19 @@ class Registry:
                 pass
 
     def _build_answers(self, jobs: list[_Job]) -> None:
-        shared: dict[int, dict[str, Any]] = {}  # the committed model's part, once per model of the group
+        shared: dict[tuple[int, bool], dict[str, Any]] = {}  # the committed model's part, once per model of the group
         for job in jobs:  # prepared jobs only (see _answer_early)
-            committed = shared.get(id(job.state))
+            committed = shared.get((id(job.state), job.minimal))
             if committed is None:
-                committed = shared[id(job.state)] = self._committed(job.config, job.state, job.version)
+                committed = shared[(id(job.state), job.minimal)] = self._committed_for(job)
             job.answer = self._answer(job.results, job.applied, committed)
+
+    def _committed_for(self, job: _Job) -> dict[str, Any]:
+        """:meth:`_committed`, or for a minimal answer only the version and count (no solution needed)."""
+        assert job.state is not None
+        if job.minimal:
+            return {"version": job.version, "n": job.state.n}
+        return self._committed(job.config, job.state, job.version)
 
     def _prepare_group(self, tickets: list[Ticket], tips: dict[int, "_Tip"], found: dict[tuple[int, str], int],
                        now: float) -> list[PendingWrite]:

@@ -6,8 +6,9 @@ FastAPI endpoint on the same uvicorn settings (uvloop, httptools, one process)
 that only reads and parses the same JSON body. wrk, in its own process, drives
 both; a Lua script gives every observation its own idempotency key and prints
 throughput, p50/p99 latency and errors. Every figure is printed absolute and
-as a ratio to the ceiling measured in the same run, with the machine's core
-count. ``--postgres`` repeats the single-POST runs on a throwaway PostgreSQL
+as a ratio to the ceiling, with the machine's core count; the ceiling is
+measured right before and right after each run and the ratio taken to their
+mean (both are printed: their spread shows how noisy the machine was). ``--postgres`` repeats the single-POST runs on a throwaway PostgreSQL
 cluster (tests/support/postgres.py).
 
 Runs (targets from issue 7):
@@ -190,22 +191,19 @@ class Bench:
         self.script = tmp / "post.lua"
         self.script.write_text(LUA)
         self.lines: list[dict] = []
-        self.ceilings: dict[tuple, dict] = {}
+        self.ceilings = 0
 
     def emit(self, line: dict) -> None:
         self.lines.append(line)
         print(json.dumps(line), flush=True)
 
     def ceiling(self, bare: LeastwiseServer, kind: str, conns: int, batch: int, d: int) -> dict:
-        key = (kind, conns, batch, d)
-        if key not in self.ceilings:
-            if kind == "get":
-                self.ceilings[key] = wrk(f"{bare.url}/v1/models/m", self.script, conns, self.args.duration,
-                                         1, "bare", d, 0, "u", "GET")
-            else:
-                self.ceilings[key] = wrk(f"{bare.url}/v1/models/m/observations", self.script, conns,
-                                         self.args.duration, batch, f"bare{len(self.ceilings)}", d)
-        return self.ceilings[key]
+        """One measurement of the bare endpoint (see :meth:`run`: one right before and one right after each run)."""
+        self.ceilings += 1
+        if kind == "get":
+            return wrk(f"{bare.url}/v1/models/m", self.script, conns, self.args.duration, 1, "bare", d, 0, "u", "GET")
+        return wrk(f"{bare.url}/v1/models/m/observations", self.script, conns, self.args.duration, batch,
+                   f"bare{self.ceilings}", d)
 
     def run(self, server: LeastwiseServer, bare: LeastwiseServer, database: str, bench: str, conns: int, *,
             batch: int = 1, d: int = 8, name: str | None = None, models: int = 0, method: str = "POST",
@@ -218,13 +216,20 @@ class Bench:
             with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
                 http.put(f"/v1/models/{tag}", json=features(d)).raise_for_status()
                 http.post(f"/v1/models/{tag}/observations", json={"observations": warm_rows(d)}).raise_for_status()
+        # The ceiling brackets the run (machines here drift by tens of percent within minutes):
+        # the ratio is to the mean of the measurement just before and the one just after.
+        kind = "get" if method == "GET" else "post"
+        before = self.ceiling(bare, kind, conns, batch, d)
         svc = wrk(f"{server.url}{path}", self.script, conns, self.args.duration, batch, tag, d, models, "u",
                   method, etag, 0, prefer)
-        ceil = self.ceiling(bare, "get" if method == "GET" else "post", conns, batch, d)
+        after = self.ceiling(bare, kind, conns, batch, d)
+        ceil = {"rps": round((before["rps"] + after["rps"]) / 2, 1),
+                "p99_ms": round((before["p99_ms"] + after["p99_ms"]) / 2, 3)}
         line = {"bench": bench + ("_minimal" if prefer else ""), "database": database, "connections": conns,
                 "batch": batch, "d": d, **svc,
                 "observations_per_s": round(svc["rps"] * batch, 1) if method == "POST" else None,
-                "ceiling_rps": ceil["rps"], "ceiling_p99_ms": ceil["p99_ms"],
+                "ceiling_rps": ceil["rps"], "ceiling_before_after_rps": [before["rps"], after["rps"]],
+                "ceiling_p99_ms": ceil["p99_ms"],
                 "ratio": round(svc["rps"] / ceil["rps"], 3), "cpu_count": os.cpu_count()}
         if method == "POST" and check_n and not models:
             with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:

@@ -13,6 +13,7 @@ from leastwise.models import FieldError, Registry
 
 from .auth import may_see
 from .body import MISSING, read_json
+from .metrics import CONTENT_TYPE_LATEST
 from .problems import Problem
 
 __all__ = ["router", "json_response", "model_state", "observe", "prefers_minimal"]
@@ -64,8 +65,6 @@ async def healthz() -> Response:
 @router.get("/v1/metrics")
 async def metrics(request: Request) -> Response:
     """Prometheus text exposition of the service's counts (api/metrics.py); built from memory only."""
-    from .metrics import CONTENT_TYPE_LATEST  # noqa: PLC0415 - keeps the module graph one-way (metrics imports models)
-
     body = await run_in_threadpool(request.app.state.metrics.render)
     return Response(body, media_type=CONTENT_TYPE_LATEST, headers={"Cache-Control": "no-store"})
 

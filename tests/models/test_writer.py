@@ -91,3 +91,28 @@ def test_housekeeping_runs_after_each_group_is_answered_and_its_failure_stops_no
     finally:
         writer.close()
     assert len(seen) == 3 and all(released for _, released in seen)  # only once the group was released
+
+
+def test_stats_count_groups_their_sizes_and_failures():
+    def handler(tickets: list[Ticket]) -> None:
+        if any(t.job == "boom" for t in tickets):
+            raise RuntimeError("database unavailable")
+        for t in tickets:
+            t.resolve(t.job)
+
+    writer = GroupWriter(handler, gather_wait=0)
+    try:
+        assert writer.submit("a").wait() == "a"
+        try:
+            writer.submit("boom").wait()
+        except RuntimeError as exc:
+            assert "unavailable" in str(exc)
+        else:  # pragma: no cover - the handler's error must reach the request
+            raise AssertionError("the failed group's request was answered")
+        stats = writer.stats()
+    finally:
+        writer.close()
+    assert (stats.groups, stats.requests, stats.failed_groups) == (2, 2, 1)
+    assert stats.group_sizes[0] == (1.0, 2)  # both groups held one request (le="1")
+    assert stats.group_sizes[-1] == (float("inf"), 2) and stats.group_sizes_sum == 2
+    assert stats.group_seconds[-1][1] == 2 and stats.group_seconds_sum > 0

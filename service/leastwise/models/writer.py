@@ -138,7 +138,7 @@ class GroupWriter:
         self.jobs = 0
         self.failed_groups = 0  # groups whose handler raised: every request of it got the error
         # Written by the writer thread only (tally.py): requests per group, and each group's
-        # time from taking its requests to answering them.
+        # time from taking its requests to having answered them (before their release).
         self.group_sizes = Buckets(GROUP_SIZE_BOUNDS)
         self.group_seconds = Buckets(GROUP_SECONDS_BOUNDS)
         self._thread = threading.Thread(target=self._run, name=name, daemon=True)
@@ -200,9 +200,10 @@ class GroupWriter:
                     log.error("writer interrupted", exc_info=True)
                 for ticket in batch:
                     ticket.fail(exc)
-            self._release(batch)
+            # counted before the release, so whoever was answered sees its group in the stats
             self.group_sizes.observe(len(batch))
             self.group_seconds.observe(time.perf_counter() - started)
+            self._release(batch)
             if self.after_group is not None:
                 try:
                     self.after_group()

@@ -119,8 +119,9 @@ class _Collector:
         yield observations
 
         w = stats.writer
-        yield CounterMetricFamily("leastwise_write_groups", "Group-commit transactions run.",
-                                  value=w.groups if w else 0)
+        # completed groups (the +Inf bucket): WriterStats.groups also counts the one in progress
+        yield CounterMetricFamily("leastwise_write_groups", "Group-commit transactions run to the end.",
+                                  value=w.group_sizes[-1][1] if w else 0)
         yield CounterMetricFamily("leastwise_write_group_failures",
                                   "Groups whose transaction failed (every request in it got the error).",
                                   value=w.failed_groups if w else 0)

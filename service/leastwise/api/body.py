@@ -15,6 +15,7 @@ from starlette.requests import ClientDisconnect
 
 from leastwise.models import FieldError
 
+from .deadlines import body_deadlines
 from .problems import Problem
 
 __all__ = ["read_json", "MISSING"]
@@ -63,22 +64,31 @@ async def _receive(request: Request, limit: int) -> bytes:
     seconds = getattr(settings, "body_timeout", 30)
     chunks = []
     total = 0
+    # a coarse deadline (api/deadlines.py): cheaper than asyncio.timeout, answered at most 0.25 s late
+    task = asyncio.current_task()
+    assert task is not None
+    deadlines = body_deadlines()
+    deadlines.arm(task, seconds)
     try:
-        async with asyncio.timeout(seconds):
-            while True:  # the ASGI messages directly: Request.stream() adds a generator per request
-                message = await request.receive()
-                if message["type"] == "http.disconnect":
-                    raise ClientDisconnect()
-                chunk = message.get("body", b"")
-                total += len(chunk)
-                if total > limit:
-                    raise Problem(413, "content-too-large", f"the body exceeds the limit of {limit} bytes")
-                chunks.append(chunk)
-                if not message.get("more_body", False):
-                    break
-    except TimeoutError:
+        while True:  # the ASGI messages directly: Request.stream() adds a generator per request
+            message = await request.receive()
+            if message["type"] == "http.disconnect":
+                raise ClientDisconnect()
+            chunk = message.get("body", b"")
+            total += len(chunk)
+            if total > limit:
+                raise Problem(413, "content-too-large", f"the body exceeds the limit of {limit} bytes")
+            chunks.append(chunk)
+            if not message.get("more_body", False):
+                break
+    except asyncio.CancelledError:
+        if not deadlines.timed_out(task):
+            raise  # cancelled for another reason (the client went away, shutdown)
+        task.uncancel()
         raise Problem(408, "request-timeout", f"the body did not arrive within {seconds} s",
                       title="Request timeout", headers={"Connection": "close"}) from None
+    finally:
+        deadlines.disarm(task)
     return chunks[0] if len(chunks) == 1 else b"".join(chunks)
 
 

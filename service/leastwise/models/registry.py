@@ -636,6 +636,7 @@ class Registry:
 
         commit_group(self.store, prepare, now, self._commit_delay,  # raises: every ticket fails, memory untouched
                      before_commit=lambda: self._answer_early(tickets))
+        committed: list[list[dict[str, Any]]] = []  # the results of the requests this group committed
         for tip in tips.values():
             w = tip.write
             if w is not None and not w.accepted:
@@ -653,9 +654,10 @@ class Registry:
                         if w.checkpoint is not None:
                             live.checkpoint_seq, live.checkpoint_version = w.new_seq, w.new_version
             for ticket in tip.jobs:
-                if ticket.job.results is not None:
-                    self.observations.add(ticket.job.results)
                 ticket.resolve(None)
+            committed.extend(ticket.job.results for ticket in tip.jobs if ticket.job.results is not None)
+        if committed:  # one count (one lock) per group, not per request
+            self.observations.add(r for results in committed for r in results)
 
     def _answer_early(self, tickets: list[Ticket]) -> None:
         """Hand the prepared requests to their event loops so the answers are built during the commit.

@@ -58,7 +58,7 @@ class ObservationTally:
         self._counts: dict[str, int] = {}
 
     def add(self, results: Iterable[dict[str, Any]]) -> None:
-        """Count one committed request's per-observation results (a missing status means ``applied``)."""
+        """Count committed per-observation results (a missing status means ``applied``)."""
         with self._lock:
             counts = self._counts
             for r in results:

@@ -25,6 +25,7 @@ against the pattern when it is under ``/v1/models/{name}``.
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import re
 from dataclasses import dataclass
@@ -140,6 +141,12 @@ async def _answer(send: Any, start: dict, body: bytes) -> None:
 _REALM = 'Bearer realm="leastwise"'
 
 
+def _consume_outcome(task: asyncio.Task) -> None:
+    """Read a token reload's error so it is not reported as never retrieved (its waiters got it)."""
+    if not task.cancelled() and task.exception() is not None:
+        log.debug("token reload failed", exc_info=task.exception())
+
+
 class AccessMiddleware:
     """See the module docstring. ``require_tokens``: with no tokens, refuse everything (non-loopback binding)."""
 
@@ -147,6 +154,7 @@ class AccessMiddleware:
         self.app = app
         self.access = access
         self.require_tokens = require_tokens
+        self._refreshing: asyncio.Task | None = None  # the token reload in flight (see _tokens)
 
     async def __call__(self, scope: dict, receive: Any, send: Any) -> None:
         path = scope.get("path", "") if scope["type"] == "http" else ""
@@ -166,7 +174,7 @@ class AccessMiddleware:
 
         active = self.access.cached()  # fresh for a second: no database, no thread hop per request
         if active is None:
-            active = await run_in_threadpool(self.access.refresh)
+            active = await self._tokens()
         token: TokenRecord | None = None
         if active:
             token, problem = self._authenticate(scope, path, active)
@@ -193,6 +201,28 @@ class AccessMiddleware:
             await self.app(scope, receive, send)
             return
         await self._audited(scope, receive, send, rule, model, token)
+
+    async def _tokens(self) -> list:
+        """The active tokens once the cache has expired: one reload at a time per event loop.
+
+        Every request that found the cache expired used to start its own reload
+        in a worker thread: at 16 connections sixteen reads of the token table at
+        once, every second, each handing the interpreter lock back and forth with
+        the event loop. Now the first starts the reload and the others, while it
+        runs, use the list loaded up to twice ``cache_seconds`` ago (a revocation
+        by another process still takes effect within about ``cache_seconds``
+        plus one reload); older than that (or invalidated by a change made
+        here), they wait for the reload and share its outcome.
+        """
+        loop = asyncio.get_running_loop()
+        task = self._refreshing
+        if task is None or task.done() or task.get_loop() is not loop:
+            task = self._refreshing = loop.create_task(run_in_threadpool(self.access.refresh))
+            task.add_done_callback(_consume_outcome)
+        stale = self.access.cached(2 * self.access.cache_seconds)
+        if stale is not None:
+            return stale
+        return await asyncio.shield(task)  # a request that goes away does not cancel the others' reload
 
     # ------------------------------------------------------------ decisions
     def _authenticate(self, scope: dict, path: str,

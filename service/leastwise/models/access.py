@@ -207,10 +207,12 @@ class AccessControl:
         self._loaded = 0.0
 
     # ------------------------------------------------------------ tokens
-    def cached(self) -> list[tuple[str, TokenRecord]] | None:
-        """The active tokens if the cache is fresh, else ``None`` (never touches the database)."""
+    def cached(self, max_age: float | None = None) -> list[tuple[str, TokenRecord]] | None:
+        """The active tokens if loaded less than ``max_age`` seconds ago (default ``cache_seconds``), else
+        ``None``; never touches the database. After :meth:`invalidate`, ``None`` until the next refresh."""
+        age = self.cache_seconds if max_age is None else max_age
         with self._lock:
-            if self._active is not None and time.monotonic() - self._loaded < self.cache_seconds:
+            if self._active is not None and time.monotonic() - self._loaded < age:
                 return self._active
         return None
 

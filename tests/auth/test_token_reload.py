@@ -1,0 +1,144 @@
+"""The token cache's reload (api/auth.py: AccessMiddleware._tokens): one reload at a time, however many
+requests find the cache expired. Common practice for a shared cache (stale-while-revalidate); no outside source."""
+
+from __future__ import annotations
+
+import asyncio
+import threading
+import time
+
+import pytest
+
+from leastwise.api.auth import AccessMiddleware
+from leastwise.models.access import AccessControl, hash_token
+from leastwise.store import Store
+
+
+class CountingAccess(AccessControl):
+    """Counts reloads and holds each one until ``release`` is set (so the test controls the overlap)."""
+
+    def __init__(self, store: Store) -> None:
+        super().__init__(store)
+        self.reloads = 0
+        self.release = threading.Event()
+
+    def refresh(self):
+        self.reloads += 1
+        assert self.release.wait(10)
+        return super().refresh()
+
+
+@pytest.fixture
+def access(tmp_path):
+    store = Store.open(f"sqlite:///{tmp_path / 'tokens.sqlite3'}")
+    a = CountingAccess(store)
+    yield a
+    store.close()
+
+
+async def _app(scope, receive, send):
+    await send({"type": "http.response.start", "status": 200, "headers": []})
+    await send({"type": "http.response.body", "body": b"ok"})
+
+
+async def _call(mw: AccessMiddleware, token: str) -> int:
+    scope = {"type": "http", "method": "GET", "path": "/v1/models", "query_string": b"",
+             "headers": [(b"authorization", f"Bearer {token}".encode())]}
+    sent: list[dict] = []
+
+    async def receive():
+        return {"type": "http.request", "body": b"", "more_body": False}
+
+    async def send(message):
+        sent.append(message)
+
+    await mw(scope, receive, send)
+    return sent[0]["status"]
+
+
+def _expire(access: AccessControl, age: float) -> None:
+    with access._lock:
+        access._loaded = time.monotonic() - age
+
+
+def test_requests_that_find_the_cache_expired_share_one_reload(access: CountingAccess):
+    _, token = access.create_token("read", "dashboard", None)
+    mw = AccessMiddleware(_app, access)
+
+    async def scenario():
+        access.release.set()
+        assert await _call(mw, token) == 200  # the first load
+        assert access.reloads == 1
+        access.release.clear()
+        _expire(access, access.cache_seconds + 0.1)  # expired, but within twice the cache time
+        statuses = await asyncio.wait_for(asyncio.gather(*(_call(mw, token) for _ in range(16))), 10)
+        assert statuses == [200] * 16  # answered from the list of a moment ago while the reload runs
+        for _ in range(200):  # the reload has started in a worker thread (and is held there)
+            if access.reloads > 1:
+                break
+            await asyncio.sleep(0.01)
+        assert not mw._refreshing.done()
+        assert access.reloads == 2  # one reload for all sixteen, not sixteen
+        access.release.set()
+        await asyncio.wait_for(mw._refreshing, 10)
+        assert await _call(mw, token) == 200
+        assert access.reloads == 2  # fresh again: no reload
+
+    asyncio.run(scenario())
+
+
+def test_a_list_older_than_twice_the_cache_time_is_waited_for(access: CountingAccess):
+    record, token = access.create_token("read", "dashboard", None)
+    access.create_token("admin", "operator", None)  # stays active: tokens stay required
+    mw = AccessMiddleware(_app, access)
+
+    async def scenario():
+        access.release.set()
+        assert await _call(mw, token) == 200
+        # revoked by another process (written straight to the database: this object's cache keeps the token)
+        other = AccessControl(access.store)
+        other.revoke_token(record.id)
+        assert access.cached() is not None and any(d == hash_token(token) for d, _ in access.cached())
+        _expire(access, 2 * access.cache_seconds + 0.1)
+        access.release.clear()
+        waiting = [asyncio.ensure_future(_call(mw, token)) for _ in range(8)]
+        await asyncio.sleep(0.05)
+        assert not any(w.done() for w in waiting)  # nobody answered from the too-old list
+        access.release.set()
+        statuses = await asyncio.wait_for(asyncio.gather(*waiting), 10)
+        assert statuses == [401] * 8  # the reload's list: the revoked token is refused
+        assert access.reloads == 2
+
+    asyncio.run(scenario())
+
+
+def test_after_a_local_change_the_next_request_waits_for_the_reload(access: CountingAccess):
+    _, token = access.create_token("read", "dashboard", None)
+    mw = AccessMiddleware(_app, access)
+
+    async def scenario():
+        access.release.set()
+        assert await _call(mw, token) == 200
+        before = access.reloads
+        access.invalidate()  # what a change made through this object does
+        assert access.cached(1e9) is None  # no stale list to fall back on
+        assert await _call(mw, token) == 200
+        assert access.reloads == before + 1
+
+    asyncio.run(scenario())
+
+
+def test_a_failed_reload_reaches_the_requests_that_waited_for_it(access: CountingAccess, monkeypatch):
+    _, token = access.create_token("read", "dashboard", None)
+    mw = AccessMiddleware(_app, access)
+
+    def broken():
+        raise RuntimeError("database unavailable")
+
+    async def scenario():
+        access.invalidate()
+        monkeypatch.setattr(access, "refresh", broken)
+        results = await asyncio.gather(*(_call(mw, token) for _ in range(4)), return_exceptions=True)
+        assert all(isinstance(r, RuntimeError) for r in results)
+
+    asyncio.run(scenario())

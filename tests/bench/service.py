@@ -28,6 +28,7 @@ import os
 import platform
 import re
 import shutil
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -205,27 +206,50 @@ class Bench:
         return wrk(f"{bare.url}/v1/models/m/observations", self.script, conns, self.args.duration, batch,
                    f"bare{self.ceilings}", d)
 
-    def run(self, server: LeastwiseServer, bare: LeastwiseServer, database: str, bench: str, conns: int, *,
-            batch: int = 1, d: int = 8, name: str | None = None, models: int = 0, method: str = "POST",
-            etag: str = "", check_n: bool = True, prefer: str = "") -> dict:
+    def run(self, server: LeastwiseServer, bare: LeastwiseServer, database: str, bench: str, conns: int,
+            **kwargs) -> dict:
+        """:meth:`run_once` ``--repeat`` times; with more than one, a summary line of the medians follows."""
+        lines = [self.run_once(server, bare, database, bench, conns, round_=i + 1, **kwargs)
+                 for i in range(self.args.repeat)]
+        if len(lines) == 1:
+            return lines[0]
+        ratios = sorted(line["ratio"] for line in lines)
+        summary = {"bench": lines[0]["bench"], "database": database, "connections": conns,
+                   "summary_of": len(lines), "ratio_median": round(statistics.median(ratios), 3),
+                   "ratio_min": ratios[0], "ratio_max": ratios[-1],
+                   "rps_median": round(statistics.median(line["rps"] for line in lines), 1),
+                   "ceiling_rps_median": round(statistics.median(line["ceiling_rps"] for line in lines), 1),
+                   "p99_ms_median": round(statistics.median(line["p99_ms"] for line in lines), 3),
+                   "errors": sum(line["errors"] for line in lines), "cpu_count": os.cpu_count()}
+        self.emit(summary)
+        return summary
+
+    def run_once(self, server: LeastwiseServer, bare: LeastwiseServer, database: str, bench: str, conns: int, *,
+                 batch: int = 1, d: int = 8, name: str | None = None, models: int = 0, method: str = "POST",
+                 etag: str = "", check_n: bool = True, prefer: str = "", round_: int = 1) -> dict:
         import httpx
 
         tag = f"{bench}-{database}-c{conns}-b{batch}-d{d}" + ("-minimal" if prefer else "")
         path = f"/v1/models/{name or tag}" + ("/observations" if method == "POST" else "")
-        if name is None:
+        if name is None and round_ == 1:
             with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
                 http.put(f"/v1/models/{tag}", json=features(d)).raise_for_status()
                 http.post(f"/v1/models/{tag}/observations", json={"observations": warm_rows(d)}).raise_for_status()
+        n_before = 2 * d + 8
+        if method == "POST" and check_n and not models and round_ > 1:
+            with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
+                n_before = http.get(f"/v1/models/{name or tag}").json()["n"]
         # The ceiling brackets the run (machines here drift by tens of percent within minutes):
         # the ratio is to the mean of the measurement just before and the one just after.
         kind = "get" if method == "GET" else "post"
         before = self.ceiling(bare, kind, conns, batch, d)
-        svc = wrk(f"{server.url}{path}", self.script, conns, self.args.duration, batch, tag, d, models, "u",
+        svc = wrk(f"{server.url}{path}", self.script, conns, self.args.duration, batch, f"{tag}-r{round_}", d, models, "u",
                   method, etag, 0, prefer)
         after = self.ceiling(bare, kind, conns, batch, d)
         ceil = {"rps": round((before["rps"] + after["rps"]) / 2, 1),
                 "p99_ms": round((before["p99_ms"] + after["p99_ms"]) / 2, 3)}
         line = {"bench": bench + ("_minimal" if prefer else ""), "database": database, "connections": conns,
+                **({"round": round_} if self.args.repeat > 1 else {}),
                 "batch": batch, "d": d, **svc,
                 "observations_per_s": round(svc["rps"] * batch, 1) if method == "POST" else None,
                 "ceiling_rps": ceil["rps"], "ceiling_before_after_rps": [before["rps"], after["rps"]],
@@ -234,7 +258,7 @@ class Bench:
         if method == "POST" and check_n and not models:
             with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
                 n = http.get(f"/v1/models/{name or tag}").json()["n"]
-            line["applied_n"] = n - (2 * d + 8)  # every key is new: >= requests * batch (2xx means applied)
+            line["applied_n"] = n - n_before  # every key is new: >= requests * batch (2xx means applied)
         self.emit(line)
         return line
 
@@ -247,6 +271,8 @@ def serve(database: str, tmp: Path, extra: dict | None = None) -> LeastwiseServe
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--duration", type=float, default=5.0)
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="runs of each configuration (each bracketed by its ceiling); >1 adds a line of medians")
     ap.add_argument("--only", default="single,batch64,uniform,get,d64", help="comma-separated runs")
     ap.add_argument("--models", type=int, default=10_000)
     ap.add_argument("--postgres", action="store_true", help="also the single-POST runs on PostgreSQL")
@@ -320,7 +346,7 @@ def main() -> None:
             finally:
                 pserver.terminate()
         print(json.dumps({"bench": "machine", "cpu_count": os.cpu_count(), "python": platform.python_version(),
-                          "platform": platform.platform(), "duration_s": args.duration}), flush=True)
+                          "platform": platform.platform(), "duration_s": args.duration, "repeat": args.repeat}), flush=True)
     finally:
         server.terminate()
         bare.terminate()

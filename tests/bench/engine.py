@@ -6,7 +6,8 @@ Prints one JSON line per dimension (d = 8 with the targets), one for the drift
 monitor, one for the update while another thread holds the interpreter
 (``gil``), one per dimension for the blocked update with per-row steps
 (``update_block``, against single updates of the same rows), and one per
-dimension for the read-time solve (``solution_us``).
+dimension for the read-time solve (``solution_us``), and for d = 8 and 64 a
+group commit's engine work for one model (``group``: block update and read).
 """
 
 from __future__ import annotations
@@ -248,6 +249,35 @@ def measure_contention(d: int = 8, updates: int = 3000) -> dict:
             "np_dot_busy_us": round(dot_contended * 1e6, 2)}
 
 
+def measure_group(d: int, rows: int = 14, groups: int = 200) -> dict:
+    """A group commit's engine work for one model: copy, ``update_block`` of ``rows`` rows, ``solution()``.
+
+    The service's pattern at 16 connections (about 14 single posts to one model a
+    group): the block update folds the 32-row Gram buffer every few groups and the
+    read forms the extended Gram sums of the rows buffered since. Mean over
+    ``groups`` consecutive groups (the fold recurs at fixed row counts), after 20 warm-up groups.
+    """
+    rng = np.random.default_rng(300 + d)
+    total = (groups + 20) * rows
+    X, Y = rng.normal(size=(total + 4 * d, d)), rng.normal(size=total + 4 * d)
+    state = State(Spec(dim=d))
+    state.update_many(X[:4 * d], Y[:4 * d])
+    i = 4 * d
+    update = read = 0.0
+    for g in range(groups + 20):
+        c = state.copy()
+        t0 = time.perf_counter()
+        c.update_block(X[i:i + rows], Y[i:i + rows])
+        t1 = time.perf_counter()
+        c.solution()
+        t2 = time.perf_counter()
+        if g >= 20:
+            update, read = update + (t1 - t0), read + (t2 - t1)
+        state, i = c, i + rows
+    return {"d": d, "bench": "group", "rows": rows, "update_block_us": round(update / groups * 1e6, 1),
+            "solution_us": round(read / groups * 1e6, 1)}
+
+
 def main() -> None:
     quick = "--quick" in sys.argv
     rows = 100_000 if quick else 1_000_000
@@ -263,6 +293,8 @@ def main() -> None:
         print(json.dumps(measure_update_block(d) | info))
     for d in (8, 32, 64, 128):
         print(json.dumps(measure_solution(d, 5 if quick else 9) | info))
+    for d in (8, 64):
+        print(json.dumps(measure_group(d) | info))
 
 
 if __name__ == "__main__":

@@ -29,7 +29,7 @@ from scipy.linalg.lapack import dtrcon, dtrtrs
 
 from leastwise.engine import Spec, State
 from leastwise.engine import gram as gram_mod
-from leastwise.engine.gram import accumulate_rows, exact_row_sums, fold_memo, refine, split_gram, split_pairs
+from leastwise.engine.gram import accumulate_rows, exact_row_sums, fold_memo, refine, row_gram, split_gram, split_pairs
 
 DATA = json.loads((Path(__file__).resolve().parent.parent / "data" / "nist_strd_linear.json").read_text())["datasets"]
 
@@ -449,6 +449,24 @@ def test_accumulate_rows_continues_the_fold_product():
         partial = accumulate_rows(None, rows[:j]) if j else None
         partial = accumulate_rows(partial, rows[j:]) if j < k else partial
         assert _ld_bits(gram + partial) == _ld_bits(want), (trial, m, k, j)
+
+
+def test_row_gram_is_numpy_long_double_product_bit_for_bit():
+    """The block upper triangle, mirrored, against numpy's own ``r.T @ r`` (the reference), around the block edges."""
+    rng = np.random.default_rng(11)
+    sizes = [1, 2, 9, 31, 32, 33, 47, 48, 49, 64, 65, 80, 129]
+    for trial in range(150):
+        m = sizes[trial % len(sizes)] if trial < 2 * len(sizes) else int(rng.integers(1, 130))
+        k = int(rng.integers(1, 33))
+        rows = rng.normal(size=(k, m)) * np.exp(5.0 * rng.normal(size=(k, 1)))
+        if trial % 3 == 0:
+            rows = np.round(rows * 1000.0)
+        if trial % 7 == 0:
+            rows[:, 0] = -0.0
+        if trial % 11 == 0:
+            rows[:, m // 2] = 0.0
+        r = rows.astype(np.longdouble)
+        assert _ld_bits(row_gram(r)) == _ld_bits(r.T @ r), (trial, m, k)
 
 
 def test_split_gram_matches_split_pairs():

@@ -47,7 +47,7 @@ from scipy.linalg.lapack import dtrtrs
 
 __all__ = [
     "FOLD_ROWS", "EXTENDED", "new_gram", "fold", "refine", "split_pairs", "join_pairs",
-    "GramSplit", "split_gram", "FoldMemo", "fold_memo", "accumulate_rows", "exact_row_sums",
+    "GramSplit", "split_gram", "FoldMemo", "fold_memo", "accumulate_rows", "exact_row_sums", "row_gram",
 ]
 
 #: Rows buffered before they are folded into the Gram matrix.
@@ -77,12 +77,39 @@ def new_gram(dim: int, ridge: float) -> NDArray[np.longdouble]:
     return gram
 
 
+#: Column blocks of :func:`row_gram` (from this many columns up the product is split).
+_GRAM_BLOCK = 16
+
+
+def row_gram(r: NDArray[np.longdouble]) -> NDArray[np.longdouble]:
+    """``R^T R`` of extended rows ``R`` (k x m), bit for bit numpy's long double ``r.T @ r``.
+
+    numpy has no BLAS for long double: its product keeps one accumulator per
+    entry and adds the rows' products in row order, starting from 0. Entry
+    ``(i, j)`` and entry ``(j, i)`` are then the same sums of the same
+    (commutative, identically rounded) products, so the product is exactly
+    symmetric, and this computes only the block upper triangle — ``R_a^T
+    [R_a, R_b, ...]`` for each block ``a`` of ``_GRAM_BLOCK`` columns, each entry
+    the same sequential sum — and mirrors it: about 60 % of the work from 64
+    columns up (``tests/engine/test_solution_fast.py`` compares the bits).
+    """
+    k, m = r.shape
+    if m < 2 * _GRAM_BLOCK:
+        return r.T @ r
+    out = np.empty((m, m), dtype=EXTENDED)
+    for start in range(0, m, _GRAM_BLOCK):
+        end = min(m, start + _GRAM_BLOCK)
+        upper = r[:, start:end].T @ r[:, start:]  # rows start:end, columns start:m
+        out[start:end, start:] = upper
+        out[end:, start:end] = upper[:, end - start:].T
+    return out
+
+
 def fold(gram: NDArray[np.longdouble], rows: NDArray[np.float64]) -> NDArray[np.longdouble]:
     """Return ``G + R^T R`` for the buffered (already scaled) rows ``R``, in extended precision."""
     if rows.shape[0] == 0:
         return gram
-    r = rows.astype(EXTENDED)
-    return gram + r.T @ r
+    return gram + row_gram(rows.astype(EXTENDED))
 
 
 def accumulate_rows(partial: NDArray[np.longdouble] | None, rows: NDArray[np.float64]) -> NDArray[np.longdouble]:
@@ -96,8 +123,7 @@ def accumulate_rows(partial: NDArray[np.longdouble] | None, rows: NDArray[np.flo
     """
     if partial is None:
         if rows.shape[0] > 1:
-            r = rows.astype(EXTENDED)
-            return r.T @ r  # from 0, the same order
+            return row_gram(rows.astype(EXTENDED))  # from 0, the same order
         partial = np.zeros((rows.shape[1], rows.shape[1]), dtype=EXTENDED)
     for row in rows:
         # The double values widen exactly; each product is rounded once, in extended precision.

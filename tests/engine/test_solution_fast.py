@@ -433,16 +433,22 @@ def _ld_bits(a: np.ndarray) -> bytes:
     return previous_split_pairs(a).tobytes()
 
 
+def _awkward_rows(rng: np.random.Generator, k: int, m: int, trial: int) -> np.ndarray:
+    """Rows of widely spread magnitudes; every third trial integers, every seventh a column of -0.0."""
+    rows = rng.normal(size=(k, m)) * np.exp(5.0 * rng.normal(size=(k, 1)))
+    if trial % 3 == 0:
+        rows = np.round(rows * 1000.0)
+    if trial % 7 == 0:
+        rows[:, 0] = -0.0
+    return rows
+
+
 def test_accumulate_rows_continues_the_fold_product():
     rng = np.random.default_rng(3)
     for trial in range(300):
         m = int(rng.integers(2, 42)) if trial % 20 else int(rng.integers(60, 130))
         k = int(rng.integers(1, 32))
-        rows = rng.normal(size=(k, m)) * np.exp(5.0 * rng.normal(size=(k, 1)))
-        if trial % 3 == 0:
-            rows = np.round(rows * 1000.0)
-        if trial % 7 == 0:
-            rows[:, 0] = -0.0
+        rows = _awkward_rows(rng, k, m, trial)
         gram = previous_fold(np.zeros((m, m), dtype=np.longdouble), rng.normal(size=(3, m)))
         want = previous_fold(gram, rows)
         j = int(rng.integers(0, k + 1))
@@ -458,11 +464,7 @@ def test_row_gram_is_numpy_long_double_product_bit_for_bit():
     for trial in range(150):
         m = sizes[trial % len(sizes)] if trial < 2 * len(sizes) else int(rng.integers(1, 130))
         k = int(rng.integers(1, 33))
-        rows = rng.normal(size=(k, m)) * np.exp(5.0 * rng.normal(size=(k, 1)))
-        if trial % 3 == 0:
-            rows = np.round(rows * 1000.0)
-        if trial % 7 == 0:
-            rows[:, 0] = -0.0
+        rows = _awkward_rows(rng, k, m, trial)
         if trial % 11 == 0:
             rows[:, m // 2] = 0.0
         r = rows.astype(np.longdouble)

@@ -15,17 +15,18 @@ from leastwise.store import Store
 
 
 class CountingAccess(AccessControl):
-    """Counts reloads and holds each one until ``release`` is set (so the test controls the overlap)."""
+    """Counts reloads and holds each one, after its read, until ``release`` is set (the test controls the overlap)."""
 
     def __init__(self, store: Store) -> None:
         super().__init__(store)
         self.reloads = 0
         self.release = threading.Event()
 
-    def refresh(self):
+    def _read_active(self):
         self.reloads += 1
+        read = super()._read_active()
         assert self.release.wait(10)
-        return super().refresh()
+        return read
 
 
 @pytest.fixture
@@ -137,8 +138,38 @@ def test_a_failed_reload_reaches_the_requests_that_waited_for_it(access: Countin
 
     async def scenario():
         access.invalidate()
-        monkeypatch.setattr(access, "refresh", broken)
+        monkeypatch.setattr(access, "_read_active", broken)
         results = await asyncio.gather(*(_call(mw, token) for _ in range(4)), return_exceptions=True)
         assert all(isinstance(r, RuntimeError) for r in results)
+
+    asyncio.run(scenario())
+
+
+def test_a_revocation_here_during_a_reload_is_not_missed(access: CountingAccess):
+    """A reload that began before a token was revoked through this object is neither cached nor shared."""
+    record, token = access.create_token("read", "dashboard", None)
+    access.create_token("admin", "operator", None)  # stays active: tokens stay required
+    mw = AccessMiddleware(_app, access)
+
+    async def scenario():
+        access.release.set()
+        assert await _call(mw, token) == 200
+        access.release.clear()
+        _expire(access, 2 * access.cache_seconds + 0.1)
+        before = asyncio.ensure_future(_call(mw, token))  # starts a reload, held in its worker thread
+        for _ in range(200):
+            if access.reloads == 2:
+                break
+            await asyncio.sleep(0.01)
+        assert access.reloads == 2
+        # the reload has read the tokens (the one about to be revoked among them) and is held
+        access.revoke_token(record.id)  # invalidates: generation moves on
+        after = asyncio.ensure_future(_call(mw, token))
+        await asyncio.sleep(0.05)
+        access.release.set()
+        assert await asyncio.wait_for(after, 10) == 401  # its own reload, begun after the change
+        await asyncio.wait_for(before, 10)
+        assert access.reloads == 3
+        assert await _call(mw, token) == 401  # and nothing older was cached
 
     asyncio.run(scenario())

@@ -155,6 +155,7 @@ class AccessMiddleware:
         self.access = access
         self.require_tokens = require_tokens
         self._refreshing: asyncio.Task | None = None  # the token reload in flight (see _tokens)
+        self._refreshing_generation = -1  # the access generation it began in
 
     async def __call__(self, scope: dict, receive: Any, send: Any) -> None:
         path = scope.get("path", "") if scope["type"] == "http" else ""
@@ -212,12 +213,17 @@ class AccessMiddleware:
         runs, use the list loaded up to twice ``cache_seconds`` ago (a revocation
         by another process still takes effect within about ``cache_seconds``
         plus one reload); older than that (or invalidated by a change made
-        here), they wait for the reload and share its outcome.
+        here), they wait for the reload and share its outcome. A reload begun
+        before such a change is not shared by the requests after it: they start
+        their own, which sees the change.
         """
         loop = asyncio.get_running_loop()
         task = self._refreshing
-        if task is None or task.done() or task.get_loop() is not loop:
+        generation = self.access.generation
+        if (task is None or task.done() or task.get_loop() is not loop
+                or self._refreshing_generation != generation):
             task = self._refreshing = loop.create_task(run_in_threadpool(self.access.refresh))
+            self._refreshing_generation = generation
             task.add_done_callback(_consume_outcome)
         stale = self.access.cached(2 * self.access.cache_seconds)
         if stale is not None:

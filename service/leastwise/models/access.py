@@ -205,6 +205,7 @@ class AccessControl:
         self._lock = threading.Lock()
         self._active: list[tuple[str, TokenRecord]] | None = None
         self._loaded = 0.0
+        self._generation = 0  # bumped by invalidate(): a reload begun before a change is not kept
 
     # ------------------------------------------------------------ tokens
     def cached(self, max_age: float | None = None) -> list[tuple[str, TokenRecord]] | None:
@@ -216,15 +217,28 @@ class AccessControl:
                 return self._active
         return None
 
+    @property
+    def generation(self) -> int:
+        """How many times the cache was invalidated (a change made through this object)."""
+        return self._generation
+
     def refresh(self) -> list[tuple[str, TokenRecord]]:
-        """Reload the active tokens from the database."""
-        now = time.monotonic()
+        """Reload the active tokens from the database (cached unless a change was made meanwhile)."""
+        generation, loaded, active = self._read_active()
+        with self._lock:
+            # a change made here while this read ran may be missing from it: the next request reloads
+            if self._generation == generation:
+                self._active, self._loaded = active, loaded
+        return active
+
+    def _read_active(self) -> tuple[int, float, list[tuple[str, TokenRecord]]]:
+        """(the generation before the read, its time, the active tokens read)."""
+        with self._lock:
+            generation = self._generation
+        loaded = time.monotonic()
         with self.store.read() as conn:
             rows = token_q.active_tokens(conn)
-        active = [(r.digest, _record(r)) for r in rows]
-        with self._lock:
-            self._active, self._loaded = active, now
-        return active
+        return generation, loaded, [(r.digest, _record(r)) for r in rows]
 
     def _tokens(self) -> list[tuple[str, TokenRecord]]:
         active = self.cached()
@@ -233,6 +247,7 @@ class AccessControl:
     def invalidate(self) -> None:
         with self._lock:
             self._active = None
+            self._generation += 1
 
     def enabled(self) -> bool:
         """True once any unrevoked token exists."""

@@ -57,6 +57,13 @@ async def _call(mw: AccessMiddleware, token: str) -> int:
     return sent[0]["status"]
 
 
+def _two_tokens(access: CountingAccess) -> tuple:
+    """A read token to revoke, and an admin token that stays active (so tokens stay required)."""
+    record, token = access.create_token("read", "dashboard", None)
+    access.create_token("admin", "operator", None)
+    return record, token, AccessMiddleware(_app, access)
+
+
 def _expire(access: AccessControl, age: float) -> None:
     with access._lock:
         access._loaded = time.monotonic() - age
@@ -89,9 +96,7 @@ def test_requests_that_find_the_cache_expired_share_one_reload(access: CountingA
 
 
 def test_a_list_older_than_twice_the_cache_time_is_waited_for(access: CountingAccess):
-    record, token = access.create_token("read", "dashboard", None)
-    access.create_token("admin", "operator", None)  # stays active: tokens stay required
-    mw = AccessMiddleware(_app, access)
+    record, token, mw = _two_tokens(access)
 
     async def scenario():
         access.release.set()
@@ -147,9 +152,7 @@ def test_a_failed_reload_reaches_the_requests_that_waited_for_it(access: Countin
 
 def test_a_revocation_here_during_a_reload_is_not_missed(access: CountingAccess):
     """A reload that began before a token was revoked through this object is neither cached nor shared."""
-    record, token = access.create_token("read", "dashboard", None)
-    access.create_token("admin", "operator", None)  # stays active: tokens stay required
-    mw = AccessMiddleware(_app, access)
+    record, token, mw = _two_tokens(access)
 
     async def scenario():
         access.release.set()

@@ -69,22 +69,37 @@ def _expire(access: AccessControl, age: float) -> None:
         access._loaded = time.monotonic() - age
 
 
+async def _first_load(access: CountingAccess, mw: AccessMiddleware, token: str) -> None:
+    """One request that loads the tokens (its reload not held): the token is accepted."""
+    access.release.set()
+    assert await _call(mw, token) == 200
+
+
+def _hold_reloads_and_expire(access: CountingAccess, age: float) -> None:
+    """From now on reloads are held after their read; the cache is ``age`` seconds old."""
+    access.release.clear()
+    _expire(access, age)
+
+
+async def _reloads_reach(access: CountingAccess, count: int) -> None:
+    """Wait (at most 2 s) until ``count`` reloads have started in worker threads."""
+    for _ in range(200):
+        if access.reloads >= count:
+            return
+        await asyncio.sleep(0.01)
+
+
 def test_requests_that_find_the_cache_expired_share_one_reload(access: CountingAccess):
     _, token = access.create_token("read", "dashboard", None)
     mw = AccessMiddleware(_app, access)
 
     async def scenario():
-        access.release.set()
-        assert await _call(mw, token) == 200  # the first load
+        await _first_load(access, mw, token)
         assert access.reloads == 1
-        access.release.clear()
-        _expire(access, access.cache_seconds + 0.1)  # expired, but within twice the cache time
+        _hold_reloads_and_expire(access, access.cache_seconds + 0.1)  # expired, but within twice the cache time
         statuses = await asyncio.wait_for(asyncio.gather(*(_call(mw, token) for _ in range(16))), 10)
         assert statuses == [200] * 16  # answered from the list of a moment ago while the reload runs
-        for _ in range(200):  # the reload has started in a worker thread (and is held there)
-            if access.reloads > 1:
-                break
-            await asyncio.sleep(0.01)
+        await _reloads_reach(access, 2)  # the reload has started in a worker thread (and is held there)
         assert not mw._refreshing.done()
         assert access.reloads == 2  # one reload for all sixteen, not sixteen
         access.release.set()
@@ -99,14 +114,12 @@ def test_a_list_older_than_twice_the_cache_time_is_waited_for(access: CountingAc
     record, token, mw = _two_tokens(access)
 
     async def scenario():
-        access.release.set()
-        assert await _call(mw, token) == 200
+        await _first_load(access, mw, token)
         # revoked by another process (written straight to the database: this object's cache keeps the token)
         other = AccessControl(access.store)
         other.revoke_token(record.id)
         assert access.cached() is not None and any(d == hash_token(token) for d, _ in access.cached())
-        _expire(access, 2 * access.cache_seconds + 0.1)
-        access.release.clear()
+        _hold_reloads_and_expire(access, 2 * access.cache_seconds + 0.1)
         waiting = [asyncio.ensure_future(_call(mw, token)) for _ in range(8)]
         await asyncio.sleep(0.05)
         assert not any(w.done() for w in waiting)  # nobody answered from the too-old list
@@ -123,8 +136,7 @@ def test_after_a_local_change_the_next_request_waits_for_the_reload(access: Coun
     mw = AccessMiddleware(_app, access)
 
     async def scenario():
-        access.release.set()
-        assert await _call(mw, token) == 200
+        await _first_load(access, mw, token)
         before = access.reloads
         access.invalidate()  # what a change made through this object does
         assert access.cached(1e9) is None  # no stale list to fall back on
@@ -155,15 +167,10 @@ def test_a_revocation_here_during_a_reload_is_not_missed(access: CountingAccess)
     record, token, mw = _two_tokens(access)
 
     async def scenario():
-        access.release.set()
-        assert await _call(mw, token) == 200
-        access.release.clear()
-        _expire(access, 2 * access.cache_seconds + 0.1)
+        await _first_load(access, mw, token)
+        _hold_reloads_and_expire(access, 2 * access.cache_seconds + 0.1)
         before = asyncio.ensure_future(_call(mw, token))  # starts a reload, held in its worker thread
-        for _ in range(200):
-            if access.reloads == 2:
-                break
-            await asyncio.sleep(0.01)
+        await _reloads_reach(access, 2)
         assert access.reloads == 2
         # the reload has read the tokens (the one about to be revoked among them) and is held
         access.revoke_token(record.id)  # invalidates: generation moves on

@@ -235,10 +235,8 @@ class Bench:
             with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
                 http.put(f"/v1/models/{tag}", json=features(d)).raise_for_status()
                 http.post(f"/v1/models/{tag}/observations", json={"observations": warm_rows(d)}).raise_for_status()
-        n_before = 2 * d + 8
-        if method == "POST" and check_n and not models and round_ > 1:
-            with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
-                n_before = http.get(f"/v1/models/{name or tag}").json()["n"]
+        counted = method == "POST" and check_n and not models
+        n_before = model_n(server, name or tag) if counted else 0
         # The ceiling brackets the run (machines here drift by tens of percent within minutes):
         # the ratio is to the mean of the measurement just before and the one just after.
         kind = "get" if method == "GET" else "post"
@@ -255,12 +253,18 @@ class Bench:
                 "ceiling_rps": ceil["rps"], "ceiling_before_after_rps": [before["rps"], after["rps"]],
                 "ceiling_p99_ms": ceil["p99_ms"],
                 "ratio": round(svc["rps"] / ceil["rps"], 3), "cpu_count": os.cpu_count()}
-        if method == "POST" and check_n and not models:
-            with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
-                n = http.get(f"/v1/models/{name or tag}").json()["n"]
-            line["applied_n"] = n - n_before  # every key is new: >= requests * batch (2xx means applied)
+        if counted:  # every key is new: >= requests * batch (2xx means applied)
+            line["applied_n"] = model_n(server, name or tag) - n_before
         self.emit(line)
         return line
+
+
+def model_n(server: LeastwiseServer, name: str) -> int:
+    """The model's observation count, as the service reports it."""
+    import httpx
+
+    with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
+        return http.get(f"/v1/models/{name}").json()["n"]
 
 
 def serve(database: str, tmp: Path, extra: dict | None = None) -> LeastwiseServer:

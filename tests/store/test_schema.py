@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import sqlite3
+
 from sqlalchemy import inspect, text
 
 from leastwise.store import Store, migrate
+from leastwise.store.database import SQLITE_PAGE_SIZE
 
 HEAD = "0003"  # the newest revision in service/leastwise/store/migrations/versions
 
@@ -25,6 +28,33 @@ def test_sqlite_durability_pragmas(sqlite_url):
     with store.read() as conn:
         assert conn.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
         assert conn.exec_driver_sql("PRAGMA synchronous").scalar() == 2  # FULL
+    store.close()
+
+
+def test_new_sqlite_database_gets_small_pages(sqlite_url):
+    store = Store.open(sqlite_url)
+    with store.read() as conn:
+        assert conn.exec_driver_sql("PRAGMA page_size").scalar() == SQLITE_PAGE_SIZE == 2048
+    store.close()
+
+
+def test_existing_sqlite_database_keeps_its_page_size(tmp_path):
+    """A database made before the page size was set (SQLite's default 4 KiB) opens and works as it is."""
+    path = tmp_path / "older.sqlite3"
+    raw = sqlite3.connect(path)
+    raw.execute("PRAGMA page_size=4096")
+    raw.execute("PRAGMA journal_mode=WAL")
+    raw.execute("CREATE TABLE kept (v INTEGER)")
+    raw.execute("INSERT INTO kept VALUES (7)")
+    raw.commit()
+    raw.close()
+    store = Store.open(f"sqlite:///{path}")
+    with store.write() as conn:
+        conn.exec_driver_sql("INSERT INTO kept VALUES (8)")
+    with store.read() as conn:
+        assert conn.exec_driver_sql("PRAGMA page_size").scalar() == 4096
+        assert [r[0] for r in conn.exec_driver_sql("SELECT v FROM kept ORDER BY v")] == [7, 8]
+        assert conn.execute(text("SELECT version_num FROM alembic_version")).scalar_one() == HEAD
     store.close()
 
 

@@ -24,6 +24,14 @@ log = logging.getLogger("leastwise.store")
 #: execution option marking a connection whose transaction will write
 WRITE = "leastwise_write"
 
+#: Page size of a new SQLite database (an existing one keeps its own: WAL mode cannot change it).
+#: A commit writes every page it dirtied to the log, and with posts spread over many models
+#: each model's rows, index entries and version land on pages of their own: 2 KiB pages
+#: halve the bytes a commit writes against the default 4 KiB, and cut the writer's time a
+#: request by about a tenth with 10,000 models (no change with one; 1 KiB pages cost more
+#: per page and slowed 64-row batches). Measured in-process, groups of 15 posts.
+SQLITE_PAGE_SIZE = 2048
+
 _MIGRATION_LOCK = 0x6C65617374  # "least"
 _MIGRATIONS = Path(__file__).resolve().parent / "migrations"
 
@@ -62,6 +70,7 @@ def _sqlite_hooks(engine: Engine, wal_autocheckpoint: bool = True) -> None:
     def _on_connect(dbapi_connection, _record) -> None:  # noqa: ANN001
         dbapi_connection.isolation_level = None  # transactions are begun below, explicitly
         cursor = dbapi_connection.cursor()
+        cursor.execute(f"PRAGMA page_size={SQLITE_PAGE_SIZE}")  # before the first table exists; else no effect
         cursor.execute("PRAGMA journal_mode=WAL")
         cursor.execute("PRAGMA synchronous=FULL")
         cursor.execute("PRAGMA foreign_keys=ON")

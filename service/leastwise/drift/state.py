@@ -76,6 +76,7 @@ import math
 import struct
 from dataclasses import asdict, dataclass
 
+from ..slots import slot_copier
 from .cusum import bde_constant
 
 _INF = math.inf
@@ -571,12 +572,9 @@ class DriftState:
         """An independent copy that continues bit for bit like the original.
 
         Every slot holds a number or the frozen config, so a slot-wise copy is
-        complete; it costs about 3 us against about 60 us for a byte round trip.
+        complete; it costs under 1 us against about 60 us for a byte round trip.
         """
-        new = DriftState.__new__(DriftState)
-        for name in DriftState.__slots__:
-            setattr(new, name, getattr(self, name))
-        return new
+        return _copy_slots(self)
 
     @classmethod
     def from_bytes(cls, data: bytes) -> "DriftState":
@@ -616,3 +614,6 @@ class DriftState:
 
     def __repr__(self) -> str:
         return f"DriftState(index={self._t}, n_used={self._m}, status={self.status().status!r})"
+
+
+_copy_slots = slot_copier(DriftState)

@@ -27,6 +27,7 @@ import orjson
 
 from leastwise.drift import DriftConfig, DriftState, chow_predictive_test, wald_change
 from leastwise.engine import EngineError, State, Step
+from leastwise.slots import slot_copier
 
 from .errors import FieldError
 
@@ -719,14 +720,15 @@ class ResidualMonitor:
 
     def copy(self) -> "ResidualMonitor":
         """An independent copy (arrays are never changed in place, so they are shared)."""
-        new = ResidualMonitor.__new__(ResidualMonitor)
-        for slot in ResidualMonitor.__slots__:
-            setattr(new, slot, getattr(self, slot))
+        new = _copy_slots(self)
         new.detector = self.detector.copy()
         new.settings = dict(self.settings)
         new.reference = dict(self.reference)
         new.events = list(self.events)  # chained prepares (group commit) keep the events not yet written
         return new
+
+
+_copy_slots = slot_copier(ResidualMonitor)
 
 
 def _event(change: dict[str, Any]) -> dict[str, Any]:

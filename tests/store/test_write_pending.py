@@ -13,7 +13,7 @@ from sqlalchemy.exc import IntegrityError
 
 from leastwise.store import CheckpointRow, LogRow, PendingWrite, Store
 from leastwise.store import queries as q
-from leastwise.store.drift import log_rows_after
+from leastwise.store.drift import list_events, log_rows_after
 
 
 def _rows(start: int, count: int, block: int | None) -> list[LogRow]:
@@ -57,4 +57,31 @@ def test_a_key_recorded_twice_rolls_the_write_back(database_url):
     with store.read() as conn:
         back = list(log_rows_after(conn, mid, 0))
     assert back == [r._replace(received=0.0) for r in first]  # nothing of the refused write remains
+    store.close()
+
+
+def test_drift_events_of_several_models_come_back_in_order_as_written(database_url):
+    """The group writer's events go in as one multi-row statement; list_events reads each model's back."""
+    store = Store.open(database_url)
+    with store.write() as conn:
+        ids = [q.insert_model(conn, name, "{}", 0.0, CheckpointRow(1, 0, b"", b"")).id for name in ("m1", "m2")]
+    events = {
+        ids[0]: [{"seq": 1, "status": "warning", "statistic": "mean_cusum_up", "value": 4.5, "threshold": 4.0,
+                  "since": 1, "previous": "ok"},
+                 {"seq": 2, "status": "alarm", "statistic": "bde_cusum", "value": None, "threshold": 1.2,
+                  "since": None, "previous": "warning", "at": 7.5}],
+        ids[1]: [{"seq": 1, "status": "ok", "statistic": "warmup", "value": True, "threshold": None, "since": 3}],
+    }
+    writes = [PendingWrite(mid, 1, 2, 1, _rows(1, 1, None), drift_events=events[mid]) for mid in ids]
+    with store.write() as conn:
+        q.write_pending(conn, writes, 5.0)
+    with store.read() as conn:
+        back = {mid: list_events(conn, mid) for mid in ids}
+    first, second = back[ids[0]]
+    assert (first["seq"], first["status"], first["statistic"], first["value"], first["threshold"], first["since"],
+            first["at"], first["detail"]) == (1, "warning", "mean_cusum_up", 4.5, 4.0, 1, 5.0, {"previous": "ok"})
+    assert (second["at"], second["value"], second["since"], second["detail"]) == (7.5, None, None, {"previous": "warning", "at": 7.5})
+    assert first["id"] < second["id"]
+    (only,) = back[ids[1]]
+    assert (only["statistic"], only["value"], only["threshold"], only["since"]) == ("warmup", None, None, 3)  # a bool is no value
     store.close()

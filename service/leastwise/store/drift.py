@@ -12,7 +12,7 @@ from sqlalchemy.engine import Connection
 from .queries import CheckpointRow, LogRow
 from .tables import checkpoints, drift_events, drift_references, observations
 
-__all__ = ["insert_events", "list_events", "set_reference", "get_reference", "log_rows_after", "checkpoint_at", "LOGGED"]
+__all__ = ["insert_events", "event_rows", "INSERT_EVENTS", "list_events", "set_reference", "get_reference", "log_rows_after", "checkpoint_at", "LOGGED"]
 
 #: Log statuses replayed on load: applied observations and gated ones (logged, not applied).
 LOGGED = ("applied", "gated")
@@ -22,19 +22,29 @@ def _num(v: Any) -> float | None:
     return float(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else None
 
 
-def insert_events(conn: Connection, model_id: int, events: Sequence[dict[str, Any]], at: float) -> None:
-    """Append drift events (dicts with seq, status, statistic, value, threshold, since and any detail)."""
-    if not events:
-        return
+#: The hot insert of :func:`event_rows` (the group writer runs it on the driver's cursor).
+INSERT_EVENTS = ("INSERT INTO drift_events (model_id, at, seq, status, statistic, value, threshold, since_seq, "
+                 "detail)")
+_EVENT_COLUMNS = ("model_id", "at", "seq", "status", "statistic", "value", "threshold", "since_seq", "detail")
+
+
+def event_rows(model_id: int, events: Sequence[dict[str, Any]], at: float) -> list[tuple]:
+    """Rows of ``drift_events`` (in :data:`INSERT_EVENTS`' column order) for drift events
+    (dicts with seq, status, statistic, value, threshold, since and any detail)."""
     rows = []
     for e in events:
         detail = {k: v for k, v in e.items() if k not in ("seq", "status", "statistic", "value", "threshold", "since")}
-        rows.append({"model_id": model_id, "at": float(e.get("at", at)), "seq": int(e["seq"]),
-                     "status": str(e["status"])[:16], "statistic": str(e["statistic"])[:64],
-                     "value": _num(e.get("value")), "threshold": _num(e.get("threshold")),
-                     "since_seq": int(e["since"]) if isinstance(e.get("since"), int) else None,
-                     "detail": orjson.dumps(detail).decode() if detail else None})
-    conn.execute(insert(drift_events), rows)
+        rows.append((model_id, float(e.get("at", at)), int(e["seq"]), str(e["status"])[:16], str(e["statistic"])[:64],
+                     _num(e.get("value")), _num(e.get("threshold")),
+                     int(e["since"]) if isinstance(e.get("since"), int) else None,
+                     orjson.dumps(detail).decode() if detail else None))
+    return rows
+
+
+def insert_events(conn: Connection, model_id: int, events: Sequence[dict[str, Any]], at: float) -> None:
+    """Append drift events (see :func:`event_rows`)."""
+    if events:
+        conn.execute(insert(drift_events), [dict(zip(_EVENT_COLUMNS, row)) for row in event_rows(model_id, events, at)])
 
 
 def list_events(conn: Connection, model_id: int, *, after: int = 0, limit: int = 100,

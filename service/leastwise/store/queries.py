@@ -308,8 +308,10 @@ def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) 
     previous one sets). The rows of all accepted writes go in with one
     ``executemany`` per table on the driver's cursor (:class:`_Raw`) and one
     batched version update, so a group of many requests costs a handful of
-    statements; checkpoints, drift events and epoch changes (rare) take the
-    SQLAlchemy queries in the same transaction.
+    statements; drift events go in the same way (with posts spread over many
+    models a status change is not rare: a model's first posts move it out of its
+    warm-up); checkpoints and epoch changes (rare) take the SQLAlchemy queries in
+    the same transaction.
     """
     if not writes:
         return
@@ -342,15 +344,18 @@ def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) 
             raw.insert_many(_INSERT_LOG, log_rows)
         if key_rows:
             raw.insert_many(_INSERT_KEY, key_rows)
+        event_rows: list[tuple] = []
         for w in writes:
             if w.accepted and w.checkpoint is not None:
                 insert_checkpoint(conn, w.model_id, w.checkpoint, now)
                 if w.compact:
                     compact(conn, w.model_id)
             if w.accepted and w.drift_events:
-                from .drift import insert_events  # drift.py imports this module
+                from . import drift  # drift.py imports this module
 
-                insert_events(conn, w.model_id, w.drift_events, now)
+                event_rows += drift.event_rows(w.model_id, w.drift_events, now)
+        if event_rows:
+            raw.insert_many(drift.INSERT_EVENTS, event_rows)
         plain = [(w.new_version, w.new_seq, w.model_id) for w in final.values() if w.new_epoch is None]
         if plain:
             raw.executemany(_BUMP, plain)

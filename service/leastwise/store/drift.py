@@ -9,7 +9,7 @@ import orjson
 from sqlalchemy import delete, insert, select
 from sqlalchemy.engine import Connection
 
-from .queries import CheckpointRow, LogRow
+from .queries import CheckpointRow, LogRow, _Raw
 from .tables import checkpoints, drift_events, drift_references, observations
 
 __all__ = ["insert_events", "event_rows", "INSERT_EVENTS", "list_events", "set_reference", "get_reference", "log_rows_after", "checkpoint_at", "LOGGED"]
@@ -22,10 +22,9 @@ def _num(v: Any) -> float | None:
     return float(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else None
 
 
-#: The hot insert of :func:`event_rows` (the group writer runs it on the driver's cursor).
+#: The insert of :func:`event_rows`, as multi-row statements on the driver's cursor (``queries._Raw``).
 INSERT_EVENTS = ("INSERT INTO drift_events (model_id, at, seq, status, statistic, value, threshold, since_seq, "
                  "detail)")
-_EVENT_COLUMNS = ("model_id", "at", "seq", "status", "statistic", "value", "threshold", "since_seq", "detail")
 
 
 def event_rows(model_id: int, events: Sequence[dict[str, Any]], at: float) -> list[tuple]:
@@ -44,7 +43,11 @@ def event_rows(model_id: int, events: Sequence[dict[str, Any]], at: float) -> li
 def insert_events(conn: Connection, model_id: int, events: Sequence[dict[str, Any]], at: float) -> None:
     """Append drift events (see :func:`event_rows`)."""
     if events:
-        conn.execute(insert(drift_events), [dict(zip(_EVENT_COLUMNS, row)) for row in event_rows(model_id, events, at)])
+        raw = _Raw(conn)
+        try:
+            raw.insert_many(INSERT_EVENTS, event_rows(model_id, events, at))
+        finally:
+            raw.close()
 
 
 def list_events(conn: Connection, model_id: int, *, after: int = 0, limit: int = 100,

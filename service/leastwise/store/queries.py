@@ -344,6 +344,8 @@ def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) 
             raw.insert_many(_INSERT_LOG, log_rows)
         if key_rows:
             raw.insert_many(_INSERT_KEY, key_rows)
+        from . import drift  # drift.py imports this module
+
         event_rows: list[tuple] = []
         for w in writes:
             if w.accepted and w.checkpoint is not None:
@@ -351,8 +353,6 @@ def write_pending(conn: Connection, writes: Sequence[PendingWrite], now: float) 
                 if w.compact:
                     compact(conn, w.model_id)
             if w.accepted and w.drift_events:
-                from . import drift  # drift.py imports this module
-
                 event_rows += drift.event_rows(w.model_id, w.drift_events, now)
         if event_rows:
             raw.insert_many(drift.INSERT_EVENTS, event_rows)

@@ -136,3 +136,54 @@ def test_an_answer_built_during_the_commit_is_dropped_when_the_commit_fails(sqli
     out = asyncio.run(reg.observe_async("m", {"x": [0.5, 0.5, 0.5], "y": 2.0}))
     assert out["results"][0]["status"] == "applied" and out["n"] == 2
     reg.close()
+
+
+def test_full_answers_are_solved_by_the_writer_before_the_commit(sqlite_url, monkeypatch):
+    """The solution a full answer reports is computed in the writer thread before the commit
+    (registry ``_answer_early``): when the event loop assembles the answers it is already cached on
+    the state, and the loop solves nothing itself."""
+    import threading
+
+    from leastwise.engine import state as state_module
+
+    reg = Registry(Store.open(sqlite_url))
+    for name in ("full", "lean"):
+        reg.create(name, CONFIG)
+        reg.observe(name, {"x": [1.0, 0.0, 0.0], "y": 1.0})
+    solved_in: set[str] = set()  # threads that solved a state
+    real_solve = state_module.solve
+
+    def recording_solve(*args, **kwargs):  # noqa: ANN002, ANN003
+        solved_in.add(threading.current_thread().name)
+        return real_solve(*args, **kwargs)
+
+    cached_at_answer: list[bool] = []  # per full job: its state's solution was there when the loop got it
+    real_build = reg._build_answers
+
+    def spy(jobs):  # noqa: ANN001
+        cached_at_answer.extend(j.state._solution is not None for j in jobs if not j.minimal)
+        real_build(jobs)
+
+    monkeypatch.setattr(state_module, "solve", recording_solve)
+    monkeypatch.setattr(reg, "_build_answers", spy)
+    rng = np.random.default_rng(5)
+    full_bodies = [_obs(rng, i) for i in range(40)]
+    lean_bodies = [_obs(rng, 100 + i) for i in range(40)]
+
+    async def main() -> list[dict]:
+        full = [reg.observe_async("full", b) for b in full_bodies]
+        lean = [reg.observe_async("lean", b, minimal=True) for b in lean_bodies]
+        return await asyncio.gather(*full, *lean)
+
+    answers = asyncio.run(main())
+    monkeypatch.undo()
+    full_answers, lean_answers = answers[:40], answers[40:]
+    assert all("coefficients" in a for a in full_answers) and not any("coefficients" in a for a in lean_answers)
+    assert len(cached_at_answer) == 40 and all(cached_at_answer)
+    assert solved_in == {"leastwise-writer"}
+    # the reported coefficients are those of the committed state, solved afresh on a copy
+    last = max(full_answers, key=lambda a: a["version"])
+    assert last["n"] == reg.live_state("full").n == 41
+    fresh = reg.live_state("full").copy().coefficients().tolist()
+    assert list(last["coefficients"].values()) == fresh
+    reg.close()

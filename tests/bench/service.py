@@ -8,7 +8,12 @@ both; a Lua script gives every observation its own idempotency key and prints
 throughput, p50/p99 latency and errors. Every figure is printed absolute and
 as a ratio to the ceiling, with the machine's core count; the ceiling is
 measured right before and right after each run and the ratio taken to their
-mean (both are printed: their spread shows how noisy the machine was). ``--postgres`` repeats the single-POST runs on a throwaway PostgreSQL
+mean (both are printed: their spread shows how noisy the machine was).
+Each line also gives the CPU time (all threads, from ``/proc``) the server
+process spent per request, the service's and the ceiling's, and their
+quotient ``cpu_ratio`` (ceiling over service): on a shared machine it moves
+far less than throughput, so it is the figure to compare code changes by (on
+PostgreSQL it leaves out the database server's own CPU). ``--postgres`` repeats the single-POST runs on a throwaway PostgreSQL
 cluster (tests/support/postgres.py).
 
 Runs (targets from issue 7):
@@ -128,18 +133,36 @@ if __name__ == "__main__":
 '''
 
 
-def wrk(url: str, script: Path, connections: int, duration: float, *lua_args: object) -> dict:
+def process_cpu_seconds(pid: int | None) -> float | None:
+    """User + system CPU time of process ``pid``, all its threads (Linux ``/proc``; None elsewhere)."""
+    if pid is None:
+        return None
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            fields = f.read().rsplit(")", 1)[1].split()
+    except OSError:
+        return None
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")  # utime, stime (stat fields 14, 15)
+
+
+def wrk(url: str, script: Path, connections: int, duration: float, *lua_args: object, pid: int | None = None) -> dict:
+    """One wrk run; with ``pid``, also the CPU that server process spent per request (``cpu_us_per_request``)."""
     threads = 2 if connections >= 2 else 1
     cmd = ["wrk", "-t", str(threads), "-c", str(connections), "-d", f"{max(1, int(round(duration)))}s",
            "--timeout", "10s", "-s", str(script), url, "--", *map(str, lua_args)]
+    cpu_before = process_cpu_seconds(pid)
     out = subprocess.run(cmd, capture_output=True, text=True, check=True).stdout
+    cpu_after = process_cpu_seconds(pid)
     m = re.search(r"RESULT (\d+) (\d+) (\d+) (\d+) (\d+) (\d+)", out)
     assert m, out
     requests, micros, p50, p99, errors, worst = map(int, m.groups())
     non2xx = re.search(r"Non-2xx or 3xx responses: (\d+)", out)
     rps = requests / (micros / 1e6)
-    return {"requests": requests, "rps": round(rps, 1), "p50_ms": round(p50 / 1000, 3), "p99_ms": round(p99 / 1000, 3),
+    line = {"requests": requests, "rps": round(rps, 1), "p50_ms": round(p50 / 1000, 3), "p99_ms": round(p99 / 1000, 3),
             "max_ms": round(worst / 1000, 1), "errors": errors + (int(non2xx.group(1)) if non2xx else 0)}
+    if cpu_before is not None and cpu_after is not None and requests:
+        line["cpu_us_per_request"] = round(1e6 * (cpu_after - cpu_before) / requests, 1)
+    return line
 
 
 def features(d: int) -> dict:
@@ -202,9 +225,10 @@ class Bench:
         """One measurement of the bare endpoint (see :meth:`run`: one right before and one right after each run)."""
         self.ceilings += 1
         if kind == "get":
-            return wrk(f"{bare.url}/v1/models/m", self.script, conns, self.args.duration, 1, "bare", d, 0, "u", "GET")
+            return wrk(f"{bare.url}/v1/models/m", self.script, conns, self.args.duration, 1, "bare", d, 0, "u", "GET",
+                       pid=bare.pid)
         return wrk(f"{bare.url}/v1/models/m/observations", self.script, conns, self.args.duration, batch,
-                   f"bare{self.ceilings}", d)
+                   f"bare{self.ceilings}", d, pid=bare.pid)
 
     def run(self, server: LeastwiseServer, bare: LeastwiseServer, database: str, bench: str, conns: int,
             **kwargs) -> dict:
@@ -220,6 +244,8 @@ class Bench:
                    "rps_median": round(statistics.median(line["rps"] for line in lines), 1),
                    "ceiling_rps_median": round(statistics.median(line["ceiling_rps"] for line in lines), 1),
                    "p99_ms_median": round(statistics.median(line["p99_ms"] for line in lines), 3),
+                   **({"cpu_ratio_median": round(statistics.median(line["cpu_ratio"] for line in lines), 3)}
+                      if all("cpu_ratio" in line for line in lines) else {}),
                    "errors": sum(line["errors"] for line in lines), "cpu_count": os.cpu_count()}
         self.emit(summary)
         return summary
@@ -242,7 +268,7 @@ class Bench:
         kind = "get" if method == "GET" else "post"
         before = self.ceiling(bare, kind, conns, batch, d)
         svc = wrk(f"{server.url}{path}", self.script, conns, self.args.duration, batch, f"{tag}-r{round_}", d, models, "u",
-                  method, etag, 0, prefer)
+                  method, etag, 0, prefer, pid=server.pid)
         after = self.ceiling(bare, kind, conns, batch, d)
         ceil = {"rps": round((before["rps"] + after["rps"]) / 2, 1),
                 "p99_ms": round((before["p99_ms"] + after["p99_ms"]) / 2, 3)}
@@ -253,6 +279,12 @@ class Bench:
                 "ceiling_rps": ceil["rps"], "ceiling_before_after_rps": [before["rps"], after["rps"]],
                 "ceiling_p99_ms": ceil["p99_ms"],
                 "ratio": round(svc["rps"] / ceil["rps"], 3), "cpu_count": os.cpu_count()}
+        cpus = [c.get("cpu_us_per_request") for c in (before, after)]
+        if svc.get("cpu_us_per_request") and all(cpus):
+            # CPU a request, the ceiling's over the service's: less noisy than throughput on a shared machine
+            ceiling_cpu = (cpus[0] + cpus[1]) / 2
+            line["ceiling_cpu_us_per_request"] = round(ceiling_cpu, 1)
+            line["cpu_ratio"] = round(ceiling_cpu / svc["cpu_us_per_request"], 3)
         if counted:  # every key is new: >= requests * batch (2xx means applied)
             line["applied_n"] = model_n(server, name or tag) - n_before
         self.emit(line)

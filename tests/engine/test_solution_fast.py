@@ -457,6 +457,53 @@ def test_accumulate_rows_continues_the_fold_product():
         assert _ld_bits(gram + partial) == _ld_bits(want), (trial, m, k, j)
 
 
+def test_folds_that_continue_a_read_give_the_gram_matrix_of_a_state_never_read(monkeypatch):
+    """``gram.fold_continuing``: a state read between folds (its memo then covers most of the buffer)
+    folds by continuing that sum; its Gram matrix, factor and stored bytes must stay those of the same
+    rows absorbed by a state never read (every fold a fresh product), compared against the frozen
+    ``previous_fold`` too."""
+    fresh_products = {"read": 0, "unread": 0}
+    real_fold = gram_mod.fold
+    counting = ["unread"]
+
+    def counted_fold(gram, rows):  # noqa: ANN001
+        fresh_products[counting[0]] += 1
+        return real_fold(gram, rows)
+
+    import leastwise.engine.state as state_mod
+
+    monkeypatch.setattr(state_mod, "fold", counted_fold)
+    monkeypatch.setattr(gram_mod, "fold", counted_fold)
+    rng = np.random.default_rng(29)
+    for trial, d in enumerate((1, 3, 8, 31, 33, 64)):
+        spec = _spec(trial % 3, d, float((0.0, 0.5)[trial % 2]), 0.99)
+        read, unread = State(spec), State(spec)
+        n = 5 * gram_mod.FOLD_ROWS + 7
+        X, y = _data(rng, d, n, KINDS[trial % len(KINDS)])
+        t = np.cumsum(rng.exponential(1.0, size=n))
+        every = (1, 5, 13, 29)[trial % 4]
+        reference = None
+        for i in range(n):
+            counting[0] = "read"
+            read.update(X[i], float(y[i]), float(t[i]))
+            if i % every == 0:
+                read.copy().solution()  # a copy shares the memo it makes (as the service's reads do)
+                read.solution()
+            counting[0] = "unread"
+            folded_before = unread._pending_n
+            unread.update(X[i], float(y[i]), float(t[i]))
+            if unread._pending_n < folded_before + 1:  # this row completed the buffer: a fold happened
+                reference = unread._gram
+            assert _ld_bits(read._gram) == _ld_bits(unread._gram), (trial, d, i)
+            assert read._factor.tobytes() == unread._factor.tobytes(), (trial, d, i)
+        assert reference is not None
+        assert read.to_bytes() == unread.to_bytes(), (trial, d)
+        # and the fresh product itself is still the frozen previous fold of the same rows
+        rows = np.array(unread._pending[: unread._pending_n])
+        assert _ld_bits(real_fold(unread._gram, rows)) == _ld_bits(previous_fold(unread._gram, rows))
+    assert fresh_products["read"] < fresh_products["unread"], fresh_products  # the continuing path was taken
+
+
 def test_row_gram_is_numpy_long_double_product_bit_for_bit():
     """The block upper triangle, mirrored, against numpy's own ``r.T @ r`` (the reference), around the block edges."""
     rng = np.random.default_rng(11)

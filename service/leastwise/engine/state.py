@@ -28,7 +28,8 @@ from scipy.linalg.lapack import dtpqrt as _tpqrt
 
 from .factor import BLOCK_CHUNK, absorb_rows, block_size, new_factor
 from .gram import (
-    _NO_EXP, _NO_LSB, EXTENDED, FOLD_ROWS, FoldMemo, GramSplit, fold, fold_memo, new_gram, sums_are_exact, value_span,
+    _NO_EXP, _NO_LSB, EXTENDED, FOLD_ROWS, FoldMemo, GramSplit, fold, fold_continuing, fold_memo, new_gram, sums_are_exact,
+    value_span,
 )
 from .solution import Excitation, Prediction, Solution, excitation, inverse_moment, predict, solve
 from .spec import Spec
@@ -646,7 +647,7 @@ class State:
         k = self._pending_n
         if k == 0:
             return
-        self._gram = fold(self._gram, self._pending[:k])
+        self._gram = fold_continuing(self._fold_memo, self._gram, self._pending, k)
         if self._sums_exact:
             self._merge_span(self._pending[:k])
         if self._base is not None:

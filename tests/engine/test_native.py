@@ -79,3 +79,49 @@ def test_compiled_sums_refuse_other_layouts():
         gram_mod._native_gram_sums(rows, np.zeros((3, 3), dtype=np.longdouble), False)
     with pytest.raises((TypeError, ValueError, BufferError)):
         gram_mod._native_gram_sums(rows, np.zeros((4, 4), dtype=np.longdouble).T[:, ::1][::2], False)
+
+
+def _split_bits(split) -> bytes:  # noqa: ANN001
+    parts = [split.pairs.tobytes(), repr(split.bound).encode()]
+    for a in (split.a3t, split.neg_b):
+        parts.append(b"none" if a is None else a.tobytes() + np.signbit(a).tobytes())
+    return b"|".join(parts)
+
+
+@pytest.mark.skipif(not gram_mod.NATIVE, reason="no compiled kernels here (CI requires them, see above)")
+def test_compiled_split_and_refinement_residual_equal_numpy_bit_for_bit(monkeypatch):
+    """``split_gram`` and one refinement step (``_refine_once``) with and without the compiled kernels,
+    on Gram matrices of awkward rows (huge entries take the no-fast-path branch in both)."""
+    from scipy.linalg.lapack import dtrtrs
+
+    rng = np.random.default_rng(77)
+    refined = 0
+    for trial in range(400):
+        d = int(rng.integers(1, 70))
+        m = d + 1
+        rows = _rows(rng, int(rng.integers(m, m + 40)), m, trial)
+        if trial % 13 == 0:
+            rows *= 1e145  # entries beyond the fast path's operand limit
+        folded = gram_mod.fold(gram_mod.new_gram(d, 0.0), rows)
+        native = gram_mod.split_gram(folded)
+        with monkeypatch.context() as patched, np.errstate(over="ignore"):  # huge entries: inf, as wanted
+            patched.setattr(gram_mod, "NATIVE", False)
+            reference = gram_mod.split_gram(folded)
+        assert _split_bits(native) == _split_bits(reference), (trial, d)
+        if native.a3t is None:
+            continue
+        R = np.linalg.qr(rows[:, :d], mode="r")
+        R = np.array(R * np.sign(np.diag(R))[:, None], order="F")
+        z = np.linalg.qr(rows, mode="r")[:d, d]
+        w0 = np.asarray(dtrtrs(R, z, lower=0, trans=0)[0], dtype=np.float64).reshape(d)
+        got = gram_mod._refine_once(R, w0, native)
+        with monkeypatch.context() as patched:
+            patched.setattr(gram_mod, "NATIVE", False)
+            want = gram_mod._refine_once(R, w0, reference)
+        if want is None:
+            assert got is None, (trial, d)
+            continue
+        refined += 1
+        assert got is not None and got[1] == want[1], (trial, d)
+        assert got[0].tobytes() == want[0].tobytes() and np.array_equal(np.signbit(got[0]), np.signbit(want[0])), (trial, d)
+    assert refined > 200

@@ -53,13 +53,17 @@ __all__ = [
 #: Rows buffered before they are folded into the Gram matrix.
 FOLD_ROWS = 32
 
-try:  # the compiled sums (service/native, built by setup.py when a C compiler is at hand)
-    from _leastwise_native import gram_sums as _native_gram_sums
+try:  # the compiled kernels (service/native, built by setup.py when a C compiler is at hand)
+    import _leastwise_native as _native_lib
 except ImportError:  # pragma: no cover - CI requires the module (tests/engine/test_native.py)
-    _native_gram_sums = None
-#: True when the extended sums of :func:`fold` and :func:`accumulate_rows` run compiled
-#: (``_leastwise_native.gram_sums``: the same bits as the numpy path, ~8x faster at 65 columns).
-NATIVE = _native_gram_sums is not None and np.dtype(np.longdouble).itemsize > 8
+    _native_lib = None
+_native_gram_sums = _native_lib.gram_sums if _native_lib is not None else None
+#: True when the extended sums of :func:`fold` and :func:`accumulate_rows`, the split of
+#: :func:`split_gram` and the residual of one refinement step run compiled
+#: (``_leastwise_native``): the same bits as the numpy path, which runs otherwise.
+NATIVE = _native_lib is not None and np.dtype(np.longdouble).itemsize > 8
+#: Largest d whose refinement residual the compiled kernel takes (its scratch is on the stack).
+_NATIVE_MAX_DIM = 64
 
 EXTENDED = np.longdouble
 #: Unit roundoff of the extended type (2^-64 on x86-64; 2^-53 where long double is double).
@@ -177,6 +181,8 @@ def split_gram(folded: NDArray[np.longdouble]) -> GramSplit:
     m = folded.shape[0]
     d = m - 1
     pairs = np.empty((2, m, m))
+    if NATIVE and d >= 1:
+        return _native_split(folded, pairs)
     hi = pairs[0]
     hi[...] = folded  # the same rounding cast as astype(float64)
     np.subtract(folded, hi, out=pairs[1])  # in extended precision (hi widened exactly), then rounded: exact
@@ -195,6 +201,21 @@ def split_gram(folded: NDArray[np.longdouble]) -> GramSplit:
     # (d = 7 here) when given a strided out=.
     neg_b = -pairs[:, :d, d]
     for a in (pairs, a3t, neg_b):  # shared by every copy of the state: never written
+        a.flags.writeable = False
+    return GramSplit(pairs, bound, a3t, neg_b)
+
+
+def _native_split(folded: NDArray[np.longdouble], pairs: NDArray[np.float64]) -> GramSplit:
+    """:func:`split_gram` with its elementwise work compiled (``_leastwise_native.split_gram``: the same bits)."""
+    d = folded.shape[0] - 1
+    a3t = np.empty((3, d, d))
+    neg_b = np.empty((2, d))
+    _native_lib.split_gram(np.ascontiguousarray(folded), pairs, a3t, neg_b)
+    bound = float(_nrm2(pairs[0][:d].ravel()))
+    if not bound <= _OPERAND_LIMIT:  # as the numpy path: no fast-path pieces for huge entries
+        pairs.flags.writeable = False
+        return GramSplit(pairs, bound, None, None)
+    for a in (pairs, a3t, neg_b):
         a.flags.writeable = False
     return GramSplit(pairs, bound, a3t, neg_b)
 
@@ -365,6 +386,12 @@ def _refine_once(
     if not (math.isfinite(sum(listed)) and wmax <= _OPERAND_LIMIT
             and bound * wmax * (4 * d + 8) + 4.0 * bound <= _SUM_LIMIT):
         return None
+    if NATIVE and d <= _NATIVE_MAX_DIM:
+        neg_resid = np.empty(d)
+        # A_lo w0 by numpy (its BLAS, as below); the two-products and exact row sums compiled
+        _native_lib.refine_residual(split.a3t, split.neg_b, split.pairs[1][:d, :d] @ w0,
+                                    np.ascontiguousarray(w0, dtype=np.float64), neg_resid)
+        return _refine_finish(R, w0, neg_resid, wmax)
     halves = np.empty((3, d, 1))  # [w0, hh, hl] as columns: the second factor of each product
     w_col = halves[0]
     w_col[:, 0] = w0
@@ -399,6 +426,13 @@ def _refine_once(
     block[:2] = split.neg_b
     block[2] = split.pairs[1][:d, :d] @ w0
     neg_resid = exact_row_sums(block[:3 + 2 * d].T, overwrite=True)
+    return _refine_finish(R, w0, neg_resid, wmax)
+
+
+def _refine_finish(
+    R: NDArray[np.float64], w0: NDArray[np.float64], neg_resid: NDArray[np.float64], wmax: float,
+) -> tuple[NDArray[np.float64], bool] | None:
+    """The rest of :func:`_refine_once` from the negated residual: the two triangular solves and the update."""
     v, _ = dtrtrs(R, neg_resid, lower=0, trans=1)
     neg_step, _ = dtrtrs(R, v, lower=0, trans=0)
     listed = neg_step.tolist()

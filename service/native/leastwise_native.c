@@ -1,4 +1,6 @@
-/* _leastwise_native: the extended-precision Gram sums of leastwise.engine.gram, compiled.
+/* _leastwise_native: compiled kernels of leastwise.engine.gram (the same bits as its numpy path):
+ * gram_sums (the extended-precision Gram sums), split_gram (the double-double split of the
+ * folded Gram matrix) and refine_residual (the residual of one refinement step).
  *
  * gram_sums(rows, out, start) computes, for float64 rows r (k x m, C order) into a
  * long double m x m array (C order),
@@ -120,6 +122,7 @@ static double exact_sum(const double *terms, Py_ssize_t n, double *partials) {
 }
 
 #define SPLITTER 134217729.0  /* Dekker's 2^27 + 1 */
+#define REFINE_MAX_DIM 64      /* refine_residual's scratch arrays are on the stack */
 
 /* split_gram(folded, pairs, a3t, neg_b): gram.split_gram's arrays from the folded m x m long
  * double Gram matrix (d = m - 1): pairs[0] = double(G), pairs[1] = double(G - pairs[0]);
@@ -180,14 +183,14 @@ static PyObject *refine_residual(PyObject *self, PyObject *args) {
         PyBuffer_Release(&a3t); PyBuffer_Release(&nb); PyBuffer_Release(&cross); PyBuffer_Release(&w); return NULL;
     }
     Py_ssize_t d = w.shape[0];
-    int ok = d >= 1 && d <= 64 && a3t.shape[0] == 3 && a3t.shape[1] == d && a3t.shape[2] == d
+    int ok = d >= 1 && d <= REFINE_MAX_DIM && a3t.shape[0] == 3 && a3t.shape[1] == d && a3t.shape[2] == d
              && nb.shape[0] == 2 && nb.shape[1] == d && cross.shape[0] == d && out.shape[0] == d;
     if (ok) {
         const double *t0 = (const double *)a3t.buf, *t1 = t0 + d * d, *t2 = t1 + d * d;
         const double *nbh = (const double *)nb.buf, *nbl = nbh + d;
         const double *cr = (const double *)cross.buf, *w0 = (const double *)w.buf;
         double *res = (double *)out.buf;
-        double hh[64], hl[64], terms[3 + 2 * 64], partials[3 + 2 * 64];
+        double hh[REFINE_MAX_DIM], hl[REFINE_MAX_DIM], terms[3 + 2 * REFINE_MAX_DIM], partials[3 + 2 * REFINE_MAX_DIM];
         for (Py_ssize_t k = 0; k < d; k++) {
             double c = SPLITTER * w0[k];
             hh[k] = c - (c - w0[k]);
@@ -222,4 +225,11 @@ static PyMethodDef methods[] = {
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_leastwise_native", NULL, -1, methods};
 
-PyMODINIT_FUNC PyInit__leastwise_native(void) { return PyModule_Create(&module); }
+PyMODINIT_FUNC PyInit__leastwise_native(void) {
+    PyObject *m = PyModule_Create(&module);
+    if (m != NULL && PyModule_AddIntConstant(m, "REFINE_MAX_DIM", REFINE_MAX_DIM) < 0) {
+        Py_DECREF(m);
+        return NULL;
+    }
+    return m;
+}

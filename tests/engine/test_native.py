@@ -41,7 +41,7 @@ def test_the_compiled_sums_are_built_where_ci_runs():
         pytest.fail("_leastwise_native is missing: pip install . builds it (setup.py; needs a C compiler)")
     if not gram_mod.NATIVE:
         pytest.skip("built without a C compiler: the numpy path runs")
-    assert gram_mod._native_gram_sums is not None
+    assert gram_mod._native_lib is not None
 
 
 @pytest.mark.skipif(not gram_mod.NATIVE, reason="no compiled sums here (CI requires them, see above)")
@@ -72,13 +72,13 @@ def test_compiled_products_and_continuations_equal_numpy_bit_for_bit(monkeypatch
 def test_compiled_sums_refuse_other_layouts():
     rows = np.ones((3, 4))
     with pytest.raises(TypeError):
-        gram_mod._native_gram_sums(rows, np.zeros((4, 4)), False)  # float64 out
+        gram_mod._native_lib.gram_sums(rows, np.zeros((4, 4)), False)  # float64 out
     with pytest.raises(TypeError):
-        gram_mod._native_gram_sums(rows.astype(np.float32), np.zeros((4, 4), dtype=np.longdouble), False)
+        gram_mod._native_lib.gram_sums(rows.astype(np.float32), np.zeros((4, 4), dtype=np.longdouble), False)
     with pytest.raises(ValueError):
-        gram_mod._native_gram_sums(rows, np.zeros((3, 3), dtype=np.longdouble), False)
+        gram_mod._native_lib.gram_sums(rows, np.zeros((3, 3), dtype=np.longdouble), False)
     with pytest.raises((TypeError, ValueError, BufferError)):
-        gram_mod._native_gram_sums(rows, np.zeros((4, 4), dtype=np.longdouble).T[:, ::1][::2], False)
+        gram_mod._native_lib.gram_sums(rows, np.zeros((4, 4), dtype=np.longdouble).T[:, ::1][::2], False)
 
 
 def _split_bits(split) -> bytes:  # noqa: ANN001

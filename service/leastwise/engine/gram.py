@@ -57,13 +57,12 @@ try:  # the compiled kernels (service/native, built by setup.py when a C compile
     import _leastwise_native as _native_lib
 except ImportError:  # pragma: no cover - CI requires the module (tests/engine/test_native.py)
     _native_lib = None
-_native_gram_sums = _native_lib.gram_sums if _native_lib is not None else None
 #: True when the extended sums of :func:`fold` and :func:`accumulate_rows`, the split of
 #: :func:`split_gram` and the residual of one refinement step run compiled
 #: (``_leastwise_native``): the same bits as the numpy path, which runs otherwise.
 NATIVE = _native_lib is not None and np.dtype(np.longdouble).itemsize > 8
 #: Largest d whose refinement residual the compiled kernel takes (its scratch is on the stack).
-_NATIVE_MAX_DIM = 64
+_NATIVE_MAX_DIM = _native_lib.REFINE_MAX_DIM if _native_lib is not None else 0
 
 EXTENDED = np.longdouble
 #: Unit roundoff of the extended type (2^-64 on x86-64; 2^-53 where long double is double).
@@ -124,7 +123,7 @@ def _native_sums(partial: NDArray[np.longdouble] | None, rows: NDArray[np.float6
         out = np.empty((m, m), dtype=EXTENDED)
     else:
         out = np.array(partial, dtype=EXTENDED, order="C")  # a copy: memos share their partial sums
-    _native_gram_sums(np.ascontiguousarray(rows, dtype=np.float64), out, partial is not None)
+    _native_lib.gram_sums(np.ascontiguousarray(rows, dtype=np.float64), out, partial is not None)
     return out
 
 
@@ -254,6 +253,12 @@ def _continuing_is_cheaper(more: int, k: int, m: int) -> bool:
     return more * (360 + 2 * m2) <= k * (35 + m2 // 2)
 
 
+def _memo_covers(memo: FoldMemo | None, gram_key: bytes, pending: NDArray[np.float64], k: int) -> bool:
+    """Whether ``memo`` was made for the Gram matrix with bytes ``gram_key`` and a prefix of ``pending[:k]``."""
+    return (memo is not None and memo.k <= k and memo.gram_key == gram_key
+            and pending[:memo.k].tobytes() == memo.rows_key)
+
+
 def fold_memo(
     memo: FoldMemo | None, gram: NDArray[np.longdouble], pending: NDArray[np.float64], k: int,
 ) -> FoldMemo:
@@ -266,7 +271,7 @@ def fold_memo(
     gram_key = gram.tobytes()
     partial = None
     start = 0
-    if memo is not None and memo.k <= k and memo.gram_key == gram_key and pending[:memo.k].tobytes() == memo.rows_key:
+    if _memo_covers(memo, gram_key, pending, k):
         if memo.k == k:
             return memo
         if _continuing_is_cheaper(k - memo.k, k, gram.shape[0]):
@@ -289,11 +294,10 @@ def fold_continuing(
     fresh product. Taken by the same cost rule as :func:`fold_memo`; at d = 64
     a fresh product of 32 rows is most of a fold.
     """
-    if memo is not None and memo.partial is not None and 0 < memo.k <= k:
-        if (_continuing_is_cheaper(k - memo.k, k, gram.shape[0]) and memo.gram_key == gram.tobytes()
-                and pending[:memo.k].tobytes() == memo.rows_key):
-            partial = memo.partial if memo.k == k else accumulate_rows(memo.partial, pending[memo.k:k])
-            return gram + partial
+    if (memo is not None and memo.partial is not None and 0 < memo.k <= k
+            and _continuing_is_cheaper(k - memo.k, k, gram.shape[0]) and _memo_covers(memo, gram.tobytes(), pending, k)):
+        partial = memo.partial if memo.k == k else accumulate_rows(memo.partial, pending[memo.k:k])
+        return gram + partial
     return fold(gram, pending[:k])
 
 

@@ -45,6 +45,8 @@ def test_counts_follow_what_was_posted(client, model):
     assert m[("leastwise_write_group_size_sum", ())] == 8
     assert m[("leastwise_write_group_size_bucket", (("le", "+Inf"),))] == groups
     assert m[("leastwise_write_group_duration_seconds_count", ())] == groups
+    # the writer thread's CPU time lies within the groups' durations (one thread cannot use more)
+    assert 0 < m[("leastwise_write_cpu_seconds_total", ())] <= m[("leastwise_write_group_duration_seconds_sum", ())] + 1e-3
     assert m[("leastwise_write_group_failures_total", ())] == 0
     assert m[("leastwise_models_loaded", ())] == 1
     assert m[("leastwise_models_drift", (("status", "ok"),))] == 1
@@ -56,6 +58,7 @@ def test_a_fresh_service_exposes_every_series_at_zero(client):
     assert m[("leastwise_write_groups_total", ())] == 0
     assert m[("leastwise_write_group_size_bucket", (("le", "1"),))] == 0
     assert m[("leastwise_write_group_duration_seconds_bucket", (("le", "+Inf"),))] == 0
+    assert m[("leastwise_write_cpu_seconds_total", ())] == 0
     assert m[("leastwise_models_loaded", ())] == 0
     assert {k for k in m if k[0] == "leastwise_models_drift"} == {
         ("leastwise_models_drift", (("status", s),)) for s in ("ok", "watch", "alarm")}

@@ -267,8 +267,10 @@ class Bench:
         # the ratio is to the mean of the measurement just before and the one just after.
         kind = "get" if method == "GET" else "post"
         before = self.ceiling(bare, kind, conns, batch, d)
+        writer_before = writer_counts(server) if method == "POST" else None
         svc = wrk(f"{server.url}{path}", self.script, conns, self.args.duration, batch, f"{tag}-r{round_}", d, models, "u",
                   method, etag, 0, prefer, pid=server.pid)
+        writer_after = writer_counts(server) if method == "POST" else None
         after = self.ceiling(bare, kind, conns, batch, d)
         ceil = {"rps": round((before["rps"] + after["rps"]) / 2, 1),
                 "p99_ms": round((before["p99_ms"] + after["p99_ms"]) / 2, 3)}
@@ -285,10 +287,39 @@ class Bench:
             ceiling_cpu = (cpus[0] + cpus[1]) / 2
             line["ceiling_cpu_us_per_request"] = round(ceiling_cpu, 1)
             line["cpu_ratio"] = round(ceiling_cpu / svc["cpu_us_per_request"], 3)
+        if writer_before is not None and writer_after is not None:
+            line.update(writer_figures(writer_before, writer_after, self.args.duration, svc["requests"]))
         if counted:  # every key is new: >= requests * batch (2xx means applied)
             line["applied_n"] = model_n(server, name or tag) - n_before
         self.emit(line)
         return line
+
+
+_WRITER_SERIES = ("leastwise_write_group_size_count", "leastwise_write_group_size_sum",
+                  "leastwise_write_group_duration_seconds_sum", "leastwise_write_cpu_seconds_total")
+
+
+def writer_counts(server: LeastwiseServer) -> dict[str, float]:
+    """The group writer's counters from the service's own ``GET /v1/metrics`` (parsed by prometheus_client)."""
+    import httpx
+    from prometheus_client.parser import text_string_to_metric_families
+
+    with httpx.Client(base_url=server.url, trust_env=False, timeout=120) as http:
+        text = http.get("/v1/metrics").text
+    found = {sample.name: sample.value for family in text_string_to_metric_families(text)
+             for sample in family.samples if not sample.labels}
+    return {name: found.get(name, 0.0) for name in _WRITER_SERIES}
+
+
+def writer_figures(before: dict[str, float], after: dict[str, float], seconds: float, requests: int) -> dict:
+    """What the writer did during a run: requests per group, the share of the run it was busy with groups
+    (``writer_busy``; well below 1 with the server's CPU not saturated says the run waits on latency),
+    and its own CPU time a request (the rest of ``cpu_us_per_request`` is the event loop's and the kernel's)."""
+    delta = {name: after[name] - before[name] for name in _WRITER_SERIES}
+    groups = delta["leastwise_write_group_size_count"]
+    return {"requests_per_group": round(delta["leastwise_write_group_size_sum"] / groups, 1) if groups else None,
+            "writer_busy": round(delta["leastwise_write_group_duration_seconds_sum"] / seconds, 3),
+            "writer_cpu_us_per_request": round(1e6 * delta["leastwise_write_cpu_seconds_total"] / max(1, requests), 1)}
 
 
 def model_n(server: LeastwiseServer, name: str) -> int:

@@ -116,3 +116,32 @@ def test_stats_count_groups_their_sizes_and_failures():
     assert stats.group_sizes[0] == (1.0, 2)  # both groups held one request (le="1")
     assert stats.group_sizes[-1] == (float("inf"), 2) and stats.group_sizes_sum == 2
     assert stats.group_seconds[-1][1] == 2 and stats.group_seconds_sum > 0
+
+
+def test_cpu_seconds_count_the_writer_threads_work_not_its_waiting():
+    """A group that waits (here a sleep, standing for the disk) adds its duration but almost no
+    CPU time; one that computes adds its CPU time (thread CPU clock, not wall-clock time)."""
+    mode = {"work": "wait"}
+
+    def handler(tickets: list[Ticket]) -> None:
+        if mode["work"] == "wait":
+            time.sleep(0.05)
+        else:
+            start = time.thread_time()
+            while time.thread_time() - start < 0.03:
+                pass
+        for t in tickets:
+            t.resolve(t.job)
+
+    writer = GroupWriter(handler, gather_wait=0)
+    try:
+        writer.submit("a").wait()
+        waited = writer.stats()
+        mode["work"] = "compute"
+        writer.submit("b").wait()
+        computed = writer.stats()
+    finally:
+        writer.close()
+    assert waited.group_seconds_sum >= 0.05  # time.sleep sleeps at least that long
+    assert waited.cpu_seconds < 0.5 * waited.group_seconds_sum
+    assert computed.cpu_seconds - waited.cpu_seconds >= 0.03

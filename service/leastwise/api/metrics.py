@@ -19,6 +19,10 @@ Series (all cumulative since the process started, except the gauges):
   ``leastwise_write_group_size`` and ``leastwise_write_group_duration_seconds``
   (histograms): the group commit (``models/writer.py``); size sum over count is
   the mean number of requests that shared one transaction;
+  ``leastwise_write_cpu_seconds_total``: the writer thread's CPU time within
+  those durations (well below the durations' sum: the writer mostly waits,
+  for the disk or for the interpreter lock; close to it: its own work bounds
+  the write rate);
 - ``leastwise_models_loaded`` and ``leastwise_models_drift{status}``: models in
   memory, and those by drift status (``ok``, ``watch``, ``alarm``);
 - ``leastwise_build_info{version, database}``: always 1.
@@ -133,6 +137,9 @@ class _Collector:
                          "Time per group: preparing the updates, the transaction and its commit, the answers.",
                          w.group_seconds if w else Buckets(GROUP_SECONDS_BOUNDS).cumulative(),
                          w.group_seconds_sum if w else 0.0)
+        yield CounterMetricFamily("leastwise_write_cpu_seconds",
+                                  "CPU time (user and system) of the writer thread within those group durations.",
+                                  value=w.cpu_seconds if w else 0.0)
 
         yield GaugeMetricFamily("leastwise_models_loaded", "Models held in memory.", value=stats.models_loaded)
         drift = GaugeMetricFamily("leastwise_models_drift", "Models in memory by drift status.", labels=["status"])

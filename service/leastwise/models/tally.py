@@ -81,6 +81,7 @@ class WriterStats:
     group_sizes_sum: float
     group_seconds: list[tuple[float, int]]
     group_seconds_sum: float
+    cpu_seconds: float = 0.0  # the writer thread's CPU time over the groups' durations
 
 
 @dataclass(frozen=True, slots=True)

@@ -141,6 +141,10 @@ class GroupWriter:
         # time from taking its requests to having answered them (before their release).
         self.group_sizes = Buckets(GROUP_SIZE_BOUNDS)
         self.group_seconds = Buckets(GROUP_SECONDS_BOUNDS)
+        # CPU time of this thread over the same spans (user and system, time.thread_time):
+        # against the durations' sum it tells a writer busy computing from one waiting
+        # (for the disk, or for the interpreter lock the event loop holds).
+        self.cpu_seconds = 0.0
         self._thread = threading.Thread(target=self._run, name=name, daemon=True)
         self._thread.start()
 
@@ -163,7 +167,8 @@ class GroupWriter:
     def stats(self) -> WriterStats:
         """The counts so far (any thread may ask)."""
         return WriterStats(self.groups, self.jobs, self.failed_groups, self.group_sizes.cumulative(),
-                           self.group_sizes.sum, self.group_seconds.cumulative(), self.group_seconds.sum)
+                           self.group_sizes.sum, self.group_seconds.cumulative(), self.group_seconds.sum,
+                           self.cpu_seconds)
 
     def close(self, timeout: float = 10.0) -> None:
         if not self._closed:
@@ -192,6 +197,7 @@ class GroupWriter:
             self.groups += 1
             self.jobs += len(batch)
             started = time.perf_counter()
+            cpu_started = time.thread_time()
             try:
                 self.handler(batch)
             except BaseException as exc:  # noqa: BLE001 - every waiting request gets the error
@@ -203,6 +209,7 @@ class GroupWriter:
             # counted before the release, so whoever was answered sees its group in the stats
             self.group_sizes.observe(len(batch))
             self.group_seconds.observe(time.perf_counter() - started)
+            self.cpu_seconds += time.thread_time() - cpu_started
             self._release(batch)
             if self.after_group is not None:
                 try:

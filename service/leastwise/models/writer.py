@@ -262,7 +262,7 @@ def commit_group(store: Store, prepare: Callable[[Any], Sequence[PendingWrite]],
     """
     writes: Sequence[PendingWrite] = ()
     try:
-        with store.write() as conn:
+        with store.group_write() as conn:
             writes = prepare(conn)
             if writes:
                 q.write_pending(conn, writes, now)
@@ -279,7 +279,7 @@ def commit_group(store: Store, prepare: Callable[[Any], Sequence[PendingWrite]],
     for w in writes:
         w.accepted = False
         try:
-            with store.write() as conn:
+            with store.group_write() as conn:
                 q.write_pending(conn, [w], now)
         except IntegrityError:
             w.accepted = False

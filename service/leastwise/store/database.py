@@ -11,11 +11,13 @@ several processes may start at once.
 from __future__ import annotations
 
 import logging
+import sqlite3
 import threading
 from pathlib import Path
 
 from sqlalchemy import create_engine, event, text
 from sqlalchemy.engine import Connection, Engine, make_url
+from sqlalchemy.exc import DBAPIError
 
 __all__ = ["open_engine", "migrate", "is_sqlite", "WRITE", "WalCheckpointer"]
 
@@ -81,7 +83,14 @@ def _sqlite_hooks(engine: Engine, wal_autocheckpoint: bool = True) -> None:
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn: Connection) -> None:
-        conn.exec_driver_sql("BEGIN IMMEDIATE" if conn.get_execution_options().get(WRITE) else "BEGIN")
+        # On the driver's connection: exec_driver_sql's statement machinery cost ~40 us of a
+        # group's ~0.9 ms in the writer thread (in-process, 15 posts a group); errors are raised
+        # as SQLAlchemy's exception types, as exec_driver_sql would.
+        statement = "BEGIN IMMEDIATE" if conn.get_execution_options().get(WRITE) else "BEGIN"
+        try:
+            conn.connection.driver_connection.execute(statement)
+        except sqlite3.Error as exc:
+            raise DBAPIError.instance(statement, (), exc, sqlite3.Error) from exc
 
 
 class WalCheckpointer:

@@ -12,7 +12,7 @@ from leastwise.settings import Settings
 from leastwise.store import Store
 
 from .auth import install_access
-from .fastlane import FastLane
+from .fastlane import FastLane, LaneApp
 from .metrics import attach as attach_metrics
 from .middleware import RequestLog
 from .problems import install_handlers
@@ -41,7 +41,7 @@ def create_app(settings: Settings | None = None, registry: Registry | None = Non
     """The ASGI app. Without ``registry`` one is built from ``settings`` (the database is opened now)."""
     settings = settings or Settings.from_env()
     registry = registry or build_registry(settings)
-    app = FastAPI(title="leastwise", version=__version__, docs_url="/docs", redoc_url=None, **framework_options())
+    app = LaneApp(title="leastwise", version=__version__, docs_url="/docs", redoc_url=None, **framework_options())
     app.state.settings = settings
     app.state.registry = registry
     app.state.serialised = {}  # GET bodies' JSON per model (routes._body_bytes)

@@ -66,18 +66,22 @@ def demo(hours: float, readings: int | None, speed: float, fouling: float, seed:
 @click.option("--compact-log/--keep-log", default=None,
               help="Delete log rows below each new checkpoint. [env LEASTWISE_COMPACT_LOG; keep]")
 @click.option("--log-level", default=None, help="debug, info, warning, error. [env LEASTWISE_LOG_LEVEL; info]")
+@click.option("--request-log", type=click.Choice(["all", "errors", "off"]), default=None,
+              help="Request lines at level info: every request, answers of status >= 400, or none "
+                   "(a line costs ~20 us of CPU; see README, Performance). [env LEASTWISE_REQUEST_LOG; all]")
 @click.option("--tls-cert", default=None, help="PEM certificate (chain) file: serve HTTPS. [env LEASTWISE_TLS_CERT]")
 @click.option("--tls-key", default=None, help="PEM private key of --tls-cert. [env LEASTWISE_TLS_KEY]")
 def serve(host: str | None, port: int | None, database: str | None, checkpoint_every: int | None,
-          compact_log: bool | None, log_level: str | None, tls_cert: str | None = None,
-          tls_key: str | None = None) -> None:
+          compact_log: bool | None, log_level: str | None, request_log: str | None = None,
+          tls_cert: str | None = None, tls_key: str | None = None) -> None:
     """Serve the REST API (see DESIGN.md) until interrupted."""
     from leastwise.serve import LoopbackOnly, run
     from leastwise.settings import Settings
 
     try:
         settings = Settings.from_env(host=host, port=port, database=database, checkpoint_every=checkpoint_every,
-                                     compact_log=compact_log, log_level=log_level, tls_cert=tls_cert, tls_key=tls_key)
+                                     compact_log=compact_log, log_level=log_level, request_log=request_log,
+                                     tls_cert=tls_cert, tls_key=tls_key)
         run(settings)
     except LoopbackOnly as exc:
         raise click.UsageError(str(exc)) from None

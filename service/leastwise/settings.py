@@ -10,6 +10,7 @@
 | max_body_bytes | ``LEASTWISE_MAX_BODY_BYTES`` | ``1048576`` (1 MiB) |
 | max_batch | ``LEASTWISE_MAX_BATCH`` | ``10000`` observations or prediction rows per request |
 | log_level | ``LEASTWISE_LOG_LEVEL`` | ``info`` |
+| request_log | ``LEASTWISE_REQUEST_LOG`` | ``all``: one line per request at level info; ``errors``: only answers of status 400 and above; ``off``: none (the metrics count every answer either way) |
 | tls_cert, tls_key | ``LEASTWISE_TLS_CERT``, ``LEASTWISE_TLS_KEY`` | none: plain HTTP; both set: HTTPS (PEM files, handed to uvicorn) |
 | limit_concurrency | ``LEASTWISE_LIMIT_CONCURRENCY`` | ``4096`` connections or requests in flight; beyond: 503 (``0``: no limit) |
 | timeout_keep_alive | ``LEASTWISE_TIMEOUT_KEEP_ALIVE`` | ``5`` seconds an idle keep-alive connection stays open |
@@ -27,11 +28,14 @@ import os
 from dataclasses import dataclass, fields, replace
 from typing import Any
 
-__all__ = ["Settings", "DEFAULT_DATABASE", "LIMIT_BODY_BYTES", "LIMIT_BATCH"]
+__all__ = ["Settings", "DEFAULT_DATABASE", "LIMIT_BODY_BYTES", "LIMIT_BATCH", "REQUEST_LOG_CHOICES"]
 
 DEFAULT_DATABASE = "sqlite:///leastwise.sqlite3"
 LIMIT_BODY_BYTES = 1 << 20
 LIMIT_BATCH = 10_000
+
+#: What the request log writes (see api/middleware.py): every request, answers of status >= 400, nothing.
+REQUEST_LOG_CHOICES = ("all", "errors", "off")
 
 _TRUE = {"1", "true", "yes", "on"}
 _FALSE = {"0", "false", "no", "off", ""}
@@ -49,6 +53,7 @@ class Settings:
     max_body_bytes: int = LIMIT_BODY_BYTES
     max_batch: int = LIMIT_BATCH
     log_level: str = "info"
+    request_log: str = "all"
     tls_cert: str = ""
     tls_key: str = ""
     limit_concurrency: int = 4096
@@ -81,6 +86,8 @@ class Settings:
             raise ValueError("group_gather_us must be in 0..100000")
         if self.threads < 1:
             raise ValueError("threads must be >= 1")
+        if self.request_log not in REQUEST_LOG_CHOICES:
+            raise ValueError(f"request_log must be one of {', '.join(REQUEST_LOG_CHOICES)}, got {self.request_log!r}")
 
     @classmethod
     def from_env(cls, environ: dict[str, str] | None = None, **overrides: Any) -> "Settings":

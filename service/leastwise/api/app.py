@@ -51,5 +51,5 @@ def create_app(settings: Settings | None = None, registry: Registry | None = Non
     app.include_router(router)
     app.add_middleware(FastLane)  # innermost: after tokens and logging, before the router
     install_access(app, settings, registry.store)  # tokens, scopes, audit (api/auth.py)
-    app.add_middleware(RequestLog, tally=attach_metrics(app, registry))  # GET /v1/metrics (api/metrics.py)
+    app.add_middleware(RequestLog, tally=attach_metrics(app, registry), lines=settings.request_log)  # GET /v1/metrics (api/metrics.py)
     return app

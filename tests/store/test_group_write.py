@@ -1,9 +1,11 @@
-"""Store.group_write: the group writer's transactions, on a connection of its own on SQLite.
+"""Store.group_write: the group writer's transactions, on a connection of its own.
 
 A committed group write is visible to every other connection and a failed one
-leaves nothing behind, on both databases. On SQLite the writer's transactions
-run on one kept connection (its page cache then stays valid between groups),
-replaced after an error, and the ``BEGIN IMMEDIATE`` the store issues on the
+leaves nothing behind, on both databases. The writer's transactions run on
+one kept connection, replaced after an error; on PostgreSQL one found dead
+after a pause is replaced before the transaction (the server ends it here with
+``pg_terminate_backend``, as a restart or failover would), while one lost in
+use fails that transaction only. The ``BEGIN IMMEDIATE`` the store issues on the
 driver's connection still reports a lock held elsewhere as SQLAlchemy's
 ``OperationalError`` once the busy timeout has passed (SQLite documentation,
 "BEGIN TRANSACTION": an IMMEDIATE transaction takes the write lock at once and
@@ -17,9 +19,10 @@ from pathlib import Path
 
 import pytest
 from sqlalchemy.engine import Connection
-from sqlalchemy.exc import OperationalError
+from sqlalchemy.exc import DBAPIError, OperationalError
 
 from leastwise.store import CheckpointRow, Store
+from leastwise.store.store import KEPT_IDLE_CHECK
 from leastwise.store import queries as q
 
 
@@ -44,8 +47,8 @@ def test_a_group_write_commits_and_a_failed_one_leaves_nothing(database_url):
         store.close()
 
 
-def test_sqlite_group_writes_keep_one_connection_until_an_error(tmp_path: Path):
-    store = Store.open(f"sqlite:///{tmp_path / 'w.sqlite3'}")
+def test_group_writes_keep_one_connection_until_an_error(database_url):
+    store = Store.open(database_url)
     try:
         def connection() -> Connection:
             with store.group_write() as conn:
@@ -62,6 +65,45 @@ def test_sqlite_group_writes_keep_one_connection_until_an_error(tmp_path: Path):
     finally:
         store.close()
     assert replaced.closed  # closed with the store
+
+
+def _end_backend(store: Store, conn: Connection) -> None:
+    """End ``conn``'s server process from another connection, as a server restart would."""
+    pid = conn.connection.driver_connection.info.backend_pid
+    with store.engine.connect() as other:
+        other.exec_driver_sql(f"SELECT pg_terminate_backend({pid})")
+        other.commit()
+
+
+def test_postgres_connection_lost_while_idle_is_replaced_before_the_transaction(postgres_url):
+    store = Store.open(postgres_url)
+    try:
+        with store.group_write() as conn:
+            kept = conn
+        _end_backend(store, kept)
+        store._kept_used -= KEPT_IDLE_CHECK + 1.0  # unused long enough to be checked first
+        with store.group_write() as conn:
+            q.insert_model(conn, "after-pause", "{}", 0.0, CheckpointRow(1, 0, b"", b""))
+        assert conn is not kept
+        assert _names(store) == ["after-pause"]
+    finally:
+        store.close()
+
+
+def test_postgres_connection_lost_in_use_fails_one_transaction(postgres_url):
+    store = Store.open(postgres_url)
+    try:
+        with store.group_write() as conn:
+            kept = conn
+        _end_backend(store, kept)  # just used: not checked, the transaction finds it gone
+        with pytest.raises(DBAPIError):
+            with store.group_write() as conn:
+                q.insert_model(conn, "lost", "{}", 0.0, CheckpointRow(1, 0, b"", b""))
+        with store.group_write() as conn:  # the next one reconnects
+            q.insert_model(conn, "next", "{}", 0.0, CheckpointRow(1, 0, b"", b""))
+        assert _names(store) == ["next"]
+    finally:
+        store.close()
 
 
 def test_sqlite_write_lock_held_elsewhere_is_an_operational_error(tmp_path: Path):

@@ -67,24 +67,29 @@ def test_group_writes_keep_one_connection_until_an_error(database_url):
     assert replaced.closed  # closed with the store
 
 
-def _end_backend(store: Store, conn: Connection) -> None:
-    """End ``conn``'s server process from another connection, as a server restart would."""
-    pid = conn.connection.driver_connection.info.backend_pid
+def _kept_then_ended(store: Store) -> Connection:
+    """The writer's kept connection after its server process was ended from another one, as a restart would."""
+    with store.group_write() as conn:
+        kept = conn
+    pid = kept.connection.driver_connection.info.backend_pid
     with store.engine.connect() as other:
         other.exec_driver_sql(f"SELECT pg_terminate_backend({pid})")
         other.commit()
+    return kept
+
+
+def _insert(store: Store, name: str) -> Connection:
+    with store.group_write() as conn:
+        q.insert_model(conn, name, "{}", 0.0, CheckpointRow(1, 0, b"", b""))
+    return conn
 
 
 def test_postgres_connection_lost_while_idle_is_replaced_before_the_transaction(postgres_url):
     store = Store.open(postgres_url)
     try:
-        with store.group_write() as conn:
-            kept = conn
-        _end_backend(store, kept)
+        kept = _kept_then_ended(store)
         store._kept_used -= KEPT_IDLE_CHECK + 1.0  # unused long enough to be checked first
-        with store.group_write() as conn:
-            q.insert_model(conn, "after-pause", "{}", 0.0, CheckpointRow(1, 0, b"", b""))
-        assert conn is not kept
+        assert _insert(store, "after-pause") is not kept
         assert _names(store) == ["after-pause"]
     finally:
         store.close()
@@ -93,14 +98,10 @@ def test_postgres_connection_lost_while_idle_is_replaced_before_the_transaction(
 def test_postgres_connection_lost_in_use_fails_one_transaction(postgres_url):
     store = Store.open(postgres_url)
     try:
-        with store.group_write() as conn:
-            kept = conn
-        _end_backend(store, kept)  # just used: not checked, the transaction finds it gone
+        _kept_then_ended(store)  # just used: not checked, the transaction finds it gone
         with pytest.raises(DBAPIError):
-            with store.group_write() as conn:
-                q.insert_model(conn, "lost", "{}", 0.0, CheckpointRow(1, 0, b"", b""))
-        with store.group_write() as conn:  # the next one reconnects
-            q.insert_model(conn, "next", "{}", 0.0, CheckpointRow(1, 0, b"", b""))
+            _insert(store, "lost")
+        _insert(store, "next")  # the next one reconnects
         assert _names(store) == ["next"]
     finally:
         store.close()

@@ -31,14 +31,13 @@ class Store:
         self._version_positional = bool(compiled.positiontup)
         self._dbapi_error = engine.dialect.loaded_dbapi.Error
         # SQLite: one connection kept for the version check (a pool checkout costs twice the query)
-        self._keep_version_conn = is_sqlite(engine)
+        # and the group writer's kept connection needs no check (group_write)
+        self._sqlite = is_sqlite(engine)
         self._quick: Any = None
         self._quick_lock = threading.Lock()
         # the group writer's own connection (see group_write)
         self._kept: Connection | None = None
-        self._kept_sqlite = is_sqlite(engine)
         self._kept_used = 0.0
-        self._dbapi_error_types = (DBAPIError, self._dbapi_error)
 
     @classmethod
     def open(cls, url: str, *, pool_size: int = 8, run_migrations: bool = True,
@@ -79,7 +78,7 @@ class Store:
         """
         params = (name,) if self._version_positional else {"name": name}
         try:
-            if self._keep_version_conn:
+            if self._sqlite:
                 with self._quick_lock:
                     if self._quick is None:
                         self._quick = self.engine.raw_connection()
@@ -139,11 +138,11 @@ class Store:
         requests get 503 and nothing is applied) and the next reconnects.
         """
         conn = self._kept
-        if conn is not None and not self._kept_sqlite and time.monotonic() - self._kept_used > KEPT_IDLE_CHECK:
+        if conn is not None and not self._sqlite and time.monotonic() - self._kept_used > KEPT_IDLE_CHECK:
             try:
                 conn.exec_driver_sql("SELECT 1")
                 conn.rollback()
-            except self._dbapi_error_types:
+            except DBAPIError:  # SQLAlchemy wraps the driver's errors
                 self._kept = None
                 conn.close()
                 conn = None
